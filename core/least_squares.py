@@ -1,14 +1,14 @@
-"""Least-squares fit of a single-site trial: entries in complete blocks (RCBD) or unblocked (CRD).
+"""Least-squares fit of a single-site trial: entries in complete blocks (RCBD) or none (CRD).
 
-The model is y = mu + block_j + entry_i + e (RCBD) or y = mu + entry_i + e (CRD), fitted to the plots
-that have a value. Missing plots are handled by least squares, not by filling them in: the entry sum of
-squares is adjusted for blocks and entry means are least-squares means (Gomez & Gomez 1984, Statistical
-Procedures for Agricultural Research, 2nd ed., ch. 7; Steel, Torrie & Dickey 1997, 3rd ed., sec. 9.9).
-For one missing plot this equals Yates' missing-plot estimate, with one residual degree of freedom lost
-per missing plot.
+The model is y = mu + block_j + entry_i + e (RCBD) or y = mu + entry_i + e (CRD), fitted to the
+plots that have a value. Missing plots are handled by least squares, not by filling them in: the
+entry sum of squares is adjusted for blocks and entry means are least-squares means (Gomez & Gomez
+1984, Statistical Procedures for Agricultural Research, 2nd ed., ch. 7; Steel, Torrie & Dickey
+1997, 3rd ed., sec. 9.9). For one missing plot this equals Yates' missing-plot estimate, with one
+residual degree of freedom lost per missing plot.
 
-The ANOVA is sequential with blocks first: the block SS ignores entries, the entry SS is adjusted for
-blocks (identical to the Type II entry SS), and block + entry + residual add up to the total.
+The ANOVA is sequential with blocks first: the block SS ignores entries, the entry SS is adjusted
+for blocks (identical to the Type II entry SS), and block + entry + residual add up to the total.
 """
 
 from __future__ import annotations
@@ -17,8 +17,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 
 from trialdesk.core.errors import TrialInputError
 
@@ -90,16 +88,24 @@ def _rss(x: np.ndarray, y: np.ndarray) -> tuple[float, int]:
     return float(resid @ resid), int(rank)
 
 
-def _check_connected(entry_code: np.ndarray, block_code: np.ndarray, entries, blocks, trait) -> None:
+def _check_connected(entry_code, block_code, entries, blocks, trait) -> None:
     """All entry differences are estimable only if entries and blocks form one connected set."""
-    t, b = len(entries), len(blocks)
-    adjacency = coo_matrix(
-        (np.ones(len(entry_code)), (entry_code, t + block_code)), shape=(t + b, t + b)
-    )
-    n_parts, part = connected_components(adjacency, directed=False)
-    if n_parts > 1:
-        groups = [sorted(entries[i] for i in range(t) if part[i] == k) for k in range(n_parts)]
-        listed = "; ".join(", ".join(g) for g in groups if g)
+    t = len(entries)
+    parent = list(range(t + len(blocks)))  # union-find over entries and blocks
+
+    def root(node: int) -> int:
+        while parent[node] != node:
+            parent[node] = parent[parent[node]]
+            node = parent[node]
+        return node
+
+    for e, b in set(zip(entry_code.tolist(), (t + block_code).tolist(), strict=True)):
+        parent[root(e)] = root(b)
+    parts: dict[int, list[str]] = {}
+    for i in range(t):
+        parts.setdefault(root(i), []).append(entries[i])
+    if len(parts) > 1:
+        listed = "; ".join(", ".join(sorted(g)) for g in parts.values())
         raise TrialInputError(
             "the missing plots split the trial into groups of entries that never share a block, so "
             f"differences between these groups are not estimable: {listed}",

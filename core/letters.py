@@ -12,6 +12,7 @@ import string
 
 import numpy as np
 from numpy.typing import ArrayLike
+
 from trialdesk.core.errors import TrialInputError
 
 __all__ = ["grouping_letters"]

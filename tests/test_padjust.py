@@ -10,6 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose, assert_array_equal
 from statsmodels.stats.multitest import multipletests
+
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.padjust import adjust_pvalues, familywise_error, per_comparison_level
 

@@ -6,9 +6,9 @@ import re
 
 import numpy as np
 from scipy.stats import studentized_range
-from trialdesk.core.letters import grouping_letters
 
 from tests.benchmarks.common import Row, best_time
+from trialdesk.core.letters import grouping_letters
 
 ENTRIES = 300
 REPLICATES = 3

@@ -1,7 +1,8 @@
 """Benchmark command: ``python -m tests.benchmarks.run [NAME ...]`` from the repository root.
 
-Runs every ``tests/benchmarks/bench_*.py`` module (or those named), each exposing ``run() -> list[Row]``,
-and prints each figure beside its peer with the ratio and whether the target is met.
+Runs every ``tests/benchmarks/bench_*.py`` module (or those named), each exposing
+``run() -> list[Row]``, and prints each figure beside its peer with the ratio and whether the
+target is met.
 """
 
 from __future__ import annotations

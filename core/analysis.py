@@ -1,0 +1,214 @@
+"""Analysis of a single-site trial: fit, mean separation, letters, checks and diagnostics."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from trialdesk.core.diagnostics import diagnose
+from trialdesk.core.errors import TrialInputError
+from trialdesk.core.fieldbook import FieldBook, check_design
+from trialdesk.core.least_squares import TrialFit, fit_trial
+from trialdesk.core.letters import grouping_letters
+from trialdesk.core.results import (
+    AnalysisSettings,
+    AnovaRow,
+    EntryMean,
+    TraitResult,
+    TrialAnalysis,
+)
+from trialdesk.core.separation import CHECK_DIRECTIONS, METHODS, Separation, separate
+from trialdesk.core.version import VERSION
+
+# A CV above this is worth a remark on the report (common practice for yield trials; it varies
+# by trait and crop).
+HIGH_CV_PERCENT = 20.0
+
+
+def _decimals(values: pd.Series) -> int:
+    """Decimals the trait was recorded with: the most shown by any value, at most 4."""
+    observed = values.dropna().to_numpy(dtype=float)
+    for d in range(5):
+        if np.allclose(observed, np.round(observed, d), rtol=0, atol=1e-9 * max(1.0, np.abs(
+                observed).max(initial=0))):
+            return d
+    return 4
+
+
+def _anova_rows(fit: TrialFit, has_blocks: bool) -> tuple[AnovaRow, ...]:
+    rows = []
+    for source in (("block", "entry") if has_blocks else ("entry",)):
+        f, p = fit.f_test(source)
+        df = fit.df[source]
+        rows.append(AnovaRow(source=source, df=df, ss=fit.ss[source],
+                             ms=fit.ss[source] / df if df else None,
+                             f=None if np.isnan(f) else f, p=None if np.isnan(p) else p))
+    rows.append(AnovaRow(source="residual", df=fit.residual_df, ss=fit.ss["residual"],
+                         ms=fit.residual_ms, f=None, p=None))
+    rows.append(AnovaRow(source="total", df=fit.df["total"], ss=fit.ss["total"], ms=None,
+                         f=None, p=None))
+    return tuple(rows)
+
+
+def _ranks(means: np.ndarray, higher_is_better: bool) -> np.ndarray:
+    score = -means if higher_is_better else means
+    return stats.rankdata(score, method="min").astype(int)
+
+
+def _vs_checks(sep: Separation, checks: Sequence[str]) -> dict[str, tuple[list, list]]:
+    """Per entry: the checks it is significantly above, and below."""
+    out: dict[str, tuple[list, list]] = {}
+    check_set = set(checks)
+    for c in sep.comparisons:
+        if not c.significant:
+            continue
+        for entry, check, sign in ((c.entry_a, c.entry_b, 1), (c.entry_b, c.entry_a, -1)):
+            if check in check_set and entry not in check_set:
+                above, below = out.setdefault(entry, ([], []))
+                (above if sign * c.difference > 0 else below).append(check)
+    return out
+
+
+def analyze_trait(book: FieldBook, trait: str, settings: AnalysisSettings) -> TraitResult:
+    """Analyse one trait of a field book."""
+    higher_is_better = trait not in settings.lower_is_better
+    values = book.values[trait]
+    observed = values.notna().to_numpy()
+    y = values.to_numpy(dtype=float)
+    blocks = book.plots["block"].to_numpy() if settings.design == "rcbd" else None
+    fit = fit_trial(y, book.plots["entry"].to_numpy(), blocks, trait=trait)
+    if fit.residual_df < 1:
+        raise TrialInputError("no residual degrees of freedom: the trial has no replication left "
+                              "to estimate error", file=book.source, column=trait)
+    anova = _anova_rows(fit, settings.design == "rcbd")
+    entry_p = next(r.p for r in anova if r.source == "entry")
+    entry_p = 1.0 if entry_p is None else entry_p
+
+    order = np.lexsort((np.arange(len(fit.means)),
+                        -fit.means if higher_is_better else fit.means))
+    entries = tuple(fit.entries[i] for i in order)
+    means = fit.means[order]
+    cov = fit.means_cov[np.ix_(order, order)]
+    se = np.sqrt(np.diag(cov))
+    replication = fit.replication[order]
+    sep = separate(entries, means, cov, fit.residual_df, method=settings.method,
+                   alpha=settings.alpha, entry_p=entry_p, checks=settings.checks,
+                   check_direction=settings.check_direction)
+    letters = (grouping_letters(means, sep.different, higher_is_better=higher_is_better)
+               if sep.different is not None else [None] * len(entries))
+    checks = [c for c in settings.checks if c in entries]
+    check_mean = float(np.mean([means[entries.index(c)] for c in checks])) if checks else None
+    vs = _vs_checks(sep, checks)
+    ranks = _ranks(means, higher_is_better)
+    entry_rows = tuple(
+        EntryMean(
+            entry=e,
+            is_check=e in checks,
+            mean=float(means[i]),
+            se=float(se[i]),
+            n=int(replication[i]),
+            rank=int(ranks[i]),
+            letters=letters[i],
+            percent_of_check=None if not check_mean else float(100.0 * means[i] / check_mean),
+            above_checks=tuple(vs.get(e, ([], []))[0]),
+            below_checks=tuple(vs.get(e, ([], []))[1]),
+        )
+        for i, e in enumerate(entries)
+    )
+
+    var = np.diag(cov)
+    iu = np.triu_indices(len(entries), k=1)
+    sed = float(np.mean(np.sqrt(var[iu[0]] + var[iu[1]] - 2 * cov[iu])))
+    grand_mean = float(np.nanmean(y))
+    cv = float(100.0 * np.sqrt(fit.residual_ms) / grand_mean) if grand_mean else float("nan")
+    warnings = []
+    if settings.method == "lsd" and entry_p > settings.alpha:
+        warnings.append(f"the entry F-test is not significant (p = {entry_p:.3g}), so the "
+                        "protected LSD declares no pair different")
+    if cv > HIGH_CV_PERCENT:
+        warnings.append(f"CV is {cv:.1f}%: the trial is imprecise for this trait; check the data "
+                        "and the flagged plots (common practice: above about 20% is high)")
+    plots_observed = book.plots.loc[observed].reset_index(drop=True)
+    diagnostics = diagnose(fit, y[observed], plots_observed)
+    for flag in diagnostics.flagged:
+        where = f"row {flag.source_row}" if flag.source_row is not None else f"plot {flag.plot}"
+        warnings.append(f"plot {flag.plot} ({where}, entry {flag.entry}) has a studentized "
+                        f"residual of {flag.studentized_residual:.2f}: check it in the field book")
+    return TraitResult(
+        trait=trait,
+        higher_is_better=higher_is_better,
+        decimals=_decimals(values),
+        design=settings.design,
+        method=settings.method,
+        alpha=settings.alpha,
+        n_plots=int(len(y)),
+        n_missing=int((~observed).sum()),
+        grand_mean=grand_mean,
+        cv_percent=cv,
+        residual_ms=fit.residual_ms,
+        residual_df=fit.residual_df,
+        sem=float(np.mean(se)),
+        sed=sed,
+        lsd=float(stats.t.ppf(1 - settings.alpha / 2, fit.residual_df) * sed),
+        anova=anova,
+        entries=entry_rows,
+        comparisons=sep.comparisons,
+        family=sep.family,
+        diagnostics=diagnostics,
+        warnings=tuple(warnings),
+    )
+
+
+def _validate_settings(book: FieldBook, settings: AnalysisSettings) -> tuple[str, ...]:
+    if settings.design not in ("rcbd", "crd"):
+        raise TrialInputError(f"unknown design '{settings.design}': choose rcbd or crd")
+    if settings.method not in METHODS:
+        raise TrialInputError(f"unknown method '{settings.method}': choose one of "
+                              f"{', '.join(METHODS)}")
+    if not 0 < settings.alpha < 1:
+        raise TrialInputError(f"alpha must lie between 0 and 1, not {settings.alpha}")
+    if settings.check_direction not in CHECK_DIRECTIONS:
+        raise TrialInputError(f"unknown check direction '{settings.check_direction}': choose "
+                              f"one of {', '.join(CHECK_DIRECTIONS)}")
+    if settings.method == "dunnett" and not settings.checks:
+        raise TrialInputError("Dunnett's method compares entries with checks: name the checks")
+    traits = settings.traits or book.traits
+    if not traits:
+        raise TrialInputError("the field book has no numeric trait columns", file=book.source)
+    for name in (*traits, *settings.lower_is_better):
+        if name not in book.traits:
+            raise TrialInputError(f"there is no trait column '{name}'; the traits are: "
+                                  f"{', '.join(book.traits)}", file=book.source)
+    check_design(book, design=settings.design, traits=traits, checks=settings.checks)
+    return tuple(traits)
+
+
+def analyze(book: FieldBook, settings: AnalysisSettings | None = None) -> TrialAnalysis:
+    """Analyse every requested trait of a field book.
+
+    Examples
+    --------
+    >>> from trialdesk.core import AnalysisSettings, analyze, demo_fieldbook_path, read_fieldbook
+    >>> book = read_fieldbook(demo_fieldbook_path())
+    >>> result = analyze(book, AnalysisSettings(method="tukey", checks=("CHK-1", "CHK-2"),
+    ...                                         traits=("grain_yield",)))
+    >>> result.trait("grain_yield").residual_df
+    70
+    """
+    settings = settings or AnalysisSettings()
+    traits = _validate_settings(book, settings)
+    results = tuple(analyze_trait(book, t, settings) for t in traits)
+    return TrialAnalysis(
+        settings=replace(settings, traits=traits),
+        source=Path(book.source).name,
+        sha256=book.sha256,
+        software_version=VERSION,
+        traits=results,
+        warnings=tuple(str(w) for w in book.warnings),
+    )
+

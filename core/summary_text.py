@@ -1,0 +1,119 @@
+"""The readable summary ``trialdesk analyze`` prints: plain text, one block per trait."""
+
+from __future__ import annotations
+
+import textwrap
+
+from trialdesk.core.cautions import CAUTIONS
+from trialdesk.core.results import TraitResult, TrialAnalysis
+from trialdesk.core.separation import METHOD_NAMES
+
+DESIGN_NAMES = {"rcbd": "randomized complete blocks", "crd": "completely randomized"}
+WIDTH = 96
+
+
+def _wrap(text: str, indent: str = "  ") -> list[str]:
+    return textwrap.wrap(text, WIDTH, initial_indent=indent, subsequent_indent=indent + "  ",
+                         break_on_hyphens=False)
+
+
+def _num(value: float | None, decimals: int) -> str:
+    return "" if value is None else f"{value:.{decimals}f}"
+
+
+def _p(value: float | None) -> str:
+    if value is None:
+        return ""
+    return "<0.0001" if value < 0.0001 else f"{value:.4f}"
+
+
+def _anova_lines(result: TraitResult) -> list[str]:
+    lines = [f"  {'Source':<10}{'df':>5}{'SS':>14}{'MS':>14}{'F':>9}{'p':>10}"]
+    for row in result.anova:
+        lines.append(
+            f"  {row.source:<10}{row.df:>5}{row.ss:>14.4f}{_num(row.ms, 4):>14}"
+            f"{_num(row.f, 2):>9}{_p(row.p):>10}"
+        )
+    return lines
+
+
+def _entry_lines(result: TraitResult, has_checks: bool) -> list[str]:
+    d = result.decimals + 1
+    letters = result.method != "dunnett"
+    header = f"  {'Rank':>4}  {'Entry':<14}{'Mean':>10}{'SE':>8}{'n':>3}"
+    header += "  Letters " if letters else ""
+    header += f"{'% check':>8}  vs checks" if has_checks else ""
+    lines = [header]
+    for e in result.entries:
+        line = (f"  {e.rank:>4}  {(e.entry + (' *' if e.is_check else '')):<14}"
+                f"{e.mean:>10.{d}f}{e.se:>8.{d}f}{e.n:>3}")
+        if letters:
+            line += f"  {e.letters or '':<8}"
+        if has_checks:
+            marks = []
+            if e.above_checks:
+                marks.append("above " + ", ".join(e.above_checks))
+            if e.below_checks:
+                marks.append("below " + ", ".join(e.below_checks))
+            line += f"{_num(e.percent_of_check, 1):>8}  {'; '.join(marks)}"
+        lines.append(line.rstrip())
+    return lines
+
+
+def family_sentence(result: TraitResult) -> str:
+    """The multiple-comparison arithmetic in one plain sentence."""
+    f = result.family
+    what = "comparisons with the checks" if result.method == "dunnett" else "pairs"
+    level = (f"{f.per_comparison_min:.2g}" if f.per_comparison_min == f.per_comparison_max
+             else f"{f.per_comparison_min:.2g} to {f.per_comparison_max:.2g}")
+    chance = ("more than 0.999" if f.familywise_unadjusted > 0.999
+              else f"{f.familywise_unadjusted:.3f}")
+    return (f"{f.m} {what}: {f.m} unadjusted tests at {result.alpha:g} would show at least one "
+            f"false difference with probability {chance}; "
+            f"{METHOD_NAMES[result.method]} tests each at a level of {level}.")
+
+
+def trait_text(result: TraitResult, has_checks: bool) -> str:
+    """The block of one trait."""
+    d = result.decimals + 1
+    direction = "higher is better" if result.higher_is_better else "lower is better"
+    lines = [
+        f"== {result.trait} ({direction}) ==",
+        f"  Plots {result.n_plots}, missing {result.n_missing}.  Grand mean "
+        f"{result.grand_mean:.{d}f}, CV {result.cv_percent:.1f}%, SEm {result.sem:.{d}f}, "
+        f"SED {result.sed:.{d}f}, LSD({result.alpha:g}) {result.lsd:.{d}f}",
+        "",
+        *_anova_lines(result),
+        "",
+        *_entry_lines(result, has_checks),
+        "",
+        *_wrap(family_sentence(result)),
+    ]
+    if result.method != "dunnett":
+        lines.append("  Entries sharing a letter were not declared different by the method.")
+    for test in result.diagnostics.tests:
+        stat = "" if test.p is None else f" (p = {_p(test.p)})"
+        lines += _wrap(f"{test.name}: {test.reading}{stat}")
+    for warning in result.warnings:
+        lines += _wrap(f"Note: {warning}")
+    return "\n".join(lines)
+
+
+def analysis_text(analysis: TrialAnalysis) -> str:
+    """The whole summary."""
+    s = analysis.settings
+    first = analysis.traits[0] if analysis.traits else None
+    n_entries = len(first.entries) if first else 0
+    head = [
+        f"Trialdesk {analysis.software_version} trial summary",
+        f"Source: {analysis.source} (sha256 {analysis.sha256[:12]})",
+        f"Design: {DESIGN_NAMES[s.design]}, {n_entries} entries"
+        + (f"; checks: {', '.join(s.checks)} (* in the tables)" if s.checks else ""),
+        f"Method: {METHOD_NAMES[s.method]}, alpha {s.alpha:g}"
+        + (f", check comparisons {s.check_direction}" if s.method == "dunnett" else ""),
+    ]
+    for warning in analysis.warnings:
+        head += _wrap(f"Warning: {warning}", indent="")
+    blocks = [trait_text(t, bool(s.checks)) for t in analysis.traits]
+    cautions = "\n".join(_wrap(CAUTIONS, indent=""))
+    return "\n".join(head) + "\n\n" + "\n\n".join(blocks) + "\n\n" + cautions + "\n"
