@@ -85,6 +85,13 @@ def analyze_trait(book: FieldBook, trait: str, settings: AnalysisSettings) -> Tr
     if fit.residual_df < 1:
         raise TrialInputError("no residual degrees of freedom: the trial has no replication left "
                               "to estimate error", file=book.source, column=trait)
+    # Relative to the total, a residual SS at rounding level means every plot fits exactly:
+    # nothing is left to test against (values copied, or entry means instead of plot values).
+    if fit.ss["residual"] <= 1e-20 * fit.ss["total"] or fit.ss["total"] == 0:
+        raise TrialInputError("the values leave no error variation (every plot fits the model "
+                              "exactly), so entries cannot be tested; check that the column holds "
+                              "plot values, not copied values or entry means",
+                              file=book.source, column=trait)
     anova = _anova_rows(fit, settings.design == "rcbd")
     entry_p = next(r.p for r in anova if r.source == "entry")
     entry_p = 1.0 if entry_p is None else entry_p
@@ -202,13 +209,25 @@ def analyze(book: FieldBook, settings: AnalysisSettings | None = None) -> TrialA
     """
     settings = settings or AnalysisSettings()
     traits = _validate_settings(book, settings)
-    results = tuple(analyze_trait(book, t, settings) for t in traits)
+    results, skipped = [], []
+    for trait in traits:
+        try:
+            results.append(analyze_trait(book, trait, settings))
+        except TrialInputError as error:
+            # One unusable trait (say, a lodging score of 1 on every plot) must not stop the
+            # others; it is reported instead. Alone, it is an error.
+            if len(traits) == 1:
+                raise
+            skipped.append(f"trait '{trait}' was not analysed: {error.message}")
+    if not results:
+        raise TrialInputError("no trait could be analysed: " + "; ".join(skipped),
+                              file=book.source)
     return TrialAnalysis(
-        settings=replace(settings, traits=traits),
+        settings=replace(settings, traits=tuple(r.trait for r in results)),
         source=Path(book.source).name,
         sha256=book.sha256,
         software_version=VERSION,
-        traits=results,
-        warnings=tuple(str(w) for w in book.warnings),
+        traits=tuple(results),
+        warnings=(*(str(w) for w in book.warnings), *skipped),
     )
 

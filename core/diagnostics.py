@@ -22,8 +22,12 @@ from trialdesk.core.results import AssumptionTest, Diagnostics, FlaggedPlot
 FLAG_LIMIT = 3.0
 
 
-def _reading(p: float, good: str, bad: str, alpha: float = 0.05) -> str:
-    if p is None or np.isnan(p):
+def _finite(value: float) -> float | None:
+    return float(value) if np.isfinite(value) else None
+
+
+def _reading(p: float | None, good: str, bad: str, alpha: float = 0.05) -> str:
+    if p is None or not np.isfinite(p):
         return "not enough data for this test"
     return bad if p < alpha else good
 
@@ -33,12 +37,13 @@ def shapiro_wilk(residuals: np.ndarray) -> AssumptionTest:
     if len(residuals) < 3 or np.ptp(residuals) == 0:
         return AssumptionTest(name="Normality of residuals (Shapiro-Wilk)", statistic=None,
                               df=None, p=None, reading="not enough data for this test")
-    w, p = stats.shapiro(residuals)
+    with np.errstate(all="ignore"):
+        w, p = stats.shapiro(residuals)
     return AssumptionTest(
         name="Normality of residuals (Shapiro-Wilk)",
-        statistic=float(w),
+        statistic=_finite(w),
         df=None,
-        p=float(p),
+        p=_finite(p),
         reading=_reading(
             p,
             "residuals look normal",
@@ -60,9 +65,9 @@ def brown_forsythe(residuals: np.ndarray, entry: np.ndarray) -> AssumptionTest:
     w, p = stats.levene(*groups, center="median")
     return AssumptionTest(
         name=name,
-        statistic=float(w),
+        statistic=_finite(w),
         df=f"{len(groups) - 1}, {n - len(groups)}",
-        p=float(p),
+        p=_finite(p),
         reading=_reading(
             p,
             "entries vary about equally",

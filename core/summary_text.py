@@ -42,7 +42,7 @@ def _entry_lines(result: TraitResult, has_checks: bool) -> list[str]:
     letters = result.method != "dunnett"
     header = f"  {'Rank':>4}  {'Entry':<14}{'Mean':>10}{'SE':>8}{'n':>3}"
     header += "  Letters " if letters else ""
-    header += f"{'% check':>8}  vs checks" if has_checks else ""
+    header += f"  {'% check':>7}  vs checks" if has_checks else ""
     lines = [header]
     for e in result.entries:
         line = (f"  {e.rank:>4}  {(e.entry + (' *' if e.is_check else '')):<14}"
@@ -55,7 +55,7 @@ def _entry_lines(result: TraitResult, has_checks: bool) -> list[str]:
                 marks.append("above " + ", ".join(e.above_checks))
             if e.below_checks:
                 marks.append("below " + ", ".join(e.below_checks))
-            line += f"{_num(e.percent_of_check, 1):>8}  {'; '.join(marks)}"
+            line += f"  {_num(e.percent_of_check, 1):>7}  {'; '.join(marks)}"
         lines.append(line.rstrip())
     return lines
 

@@ -250,3 +250,19 @@ def test_unknown_trait_and_missing_check_are_user_errors(tmp_path):
         analyze(book, AnalysisSettings(traits=("yeild",)))
     with pytest.raises(TrialInputError, match="check"):
         analyze(book, AnalysisSettings(method="dunnett"))
+
+
+def test_trait_without_error_variation_is_reported_and_others_go_on(tmp_path):
+    # A lodging score of 1 on every plot: nothing to test. Alone it is an error; beside another
+    # trait it is skipped with a warning that names it (common practice: report, don't stop).
+    rng = np.random.default_rng(2)
+    rows = [{"rep": b, "entry": e, "yield": 5 + rng.normal(0, 0.3), "lodging": 1}
+            for b in (1, 2, 3) for e in ("A", "B", "C", "D")]
+    path = tmp_path / "lodging.csv"
+    pd.DataFrame(rows).to_csv(path, index=False)
+    book = read_fieldbook(path)
+    with pytest.raises(TrialInputError, match="lodging.*no error variation"):
+        analyze(book, AnalysisSettings(traits=("lodging",)))
+    result = analyze(book, AnalysisSettings())
+    assert [t.trait for t in result.traits] == ["yield"]
+    assert any("'lodging' was not analysed" in w for w in result.warnings)
