@@ -7,9 +7,9 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 from scipy import stats
 
+from trialdesk.core.decimals import recorded_decimals
 from trialdesk.core.diagnostics import diagnose
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.fieldbook import FieldBook, check_design
@@ -28,16 +28,6 @@ from trialdesk.core.version import VERSION
 # A CV above this is worth a remark on the report (common practice for yield trials; it varies
 # by trait and crop).
 HIGH_CV_PERCENT = 20.0
-
-
-def _decimals(values: pd.Series) -> int:
-    """Decimals the trait was recorded with: the most shown by any value, at most 4."""
-    observed = values.dropna().to_numpy(dtype=float)
-    for d in range(5):
-        if np.allclose(observed, np.round(observed, d), rtol=0, atol=1e-9 * max(1.0, np.abs(
-                observed).max(initial=0))):
-            return d
-    return 4
 
 
 def _anova_rows(fit: TrialFit, has_blocks: bool) -> tuple[AnovaRow, ...]:
@@ -143,13 +133,13 @@ def analyze_trait(book: FieldBook, trait: str, settings: AnalysisSettings) -> Tr
     plots_observed = book.plots.loc[observed].reset_index(drop=True)
     diagnostics = diagnose(fit, y[observed], plots_observed)
     for flag in diagnostics.flagged:
-        where = f"row {flag.source_row}" if flag.source_row is not None else f"plot {flag.plot}"
-        warnings.append(f"plot {flag.plot} ({where}, entry {flag.entry}) has a studentized "
+        where = f"row {flag.source_row}, " if flag.source_row is not None else ""
+        warnings.append(f"plot {flag.plot} ({where}entry {flag.entry}) has a studentized "
                         f"residual of {flag.studentized_residual:.2f}: check it in the field book")
     return TraitResult(
         trait=trait,
         higher_is_better=higher_is_better,
-        decimals=_decimals(values),
+        decimals=recorded_decimals(values),
         design=settings.design,
         method=settings.method,
         alpha=settings.alpha,

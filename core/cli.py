@@ -1,7 +1,9 @@
 """Batch sub-commands of the ``trialdesk`` command (no Qt here).
 
-``trialdesk analyze FIELDBOOK ...`` analyses a field book and prints a readable summary (or JSON);
-``trialdesk demo`` analyses the bundled demo trial. Exit status: 0 on success, 2 on bad input, with
+``trialdesk analyze FILE ...`` analyses a field book or a trial file and prints a readable summary
+(or JSON); ``trialdesk demo`` analyses the bundled demo trial; ``trialdesk import`` makes a trial
+file from a field book (or shows what a re-import would change); ``trialdesk export`` writes a
+trial's plots as a field book, filled in or blank. Exit status: 0 on success, 2 on bad input, with
 the message on standard error and no traceback.
 """
 
@@ -18,7 +20,7 @@ EXIT_OK = 0
 EXIT_BAD_INPUT = 2
 
 
-def _add_analysis_options(parser: argparse.ArgumentParser) -> None:
+def _add_role_options(parser: argparse.ArgumentParser) -> None:
     roles = parser.add_argument_group("columns (found by common names when not given)")
     roles.add_argument("--sheet", help="worksheet of an XLSX field book (default: the first)")
     roles.add_argument("--entry", metavar="COL", help="column of entry codes")
@@ -30,20 +32,55 @@ def _add_analysis_options(parser: argparse.ArgumentParser) -> None:
                        help="trait to analyse (repeat for several; default: every numeric column)")
     roles.add_argument("--decimal-comma", action="store_true",
                        help="read 4,25 as 4.25 (for field books written with a decimal comma)")
-    analysis = parser.add_argument_group("analysis")
-    analysis.add_argument("--design", choices=("rcbd", "crd"), default="rcbd",
+    roles.add_argument("--check", metavar="ENTRY", action="append", default=None,
+                       help="a check variety (repeat for several)")
+    roles.add_argument("--lower-is-better", metavar="TRAIT", action="append", default=None,
+                       help="trait whose lowest mean ranks first (e.g. days to heading)")
+
+
+def _add_analysis_options(parser: argparse.ArgumentParser) -> None:
+    _add_role_options(parser)
+    analysis = parser.add_argument_group(
+        "analysis (for a trial file, the settings saved in it unless given here)")
+    analysis.add_argument("--design", choices=("rcbd", "crd"),
                           help="rcbd: randomized complete blocks (default); crd: no blocks")
-    analysis.add_argument("--method", choices=METHODS, default="tukey",
+    analysis.add_argument("--method", choices=METHODS,
                           help="mean separation method (default: tukey)")
-    analysis.add_argument("--alpha", type=float, default=0.05, help="significance level (0.05)")
-    analysis.add_argument("--check", metavar="ENTRY", action="append", default=[],
-                          help="a check variety (repeat for several)")
-    analysis.add_argument("--check-direction", choices=CHECK_DIRECTIONS, default="both",
+    analysis.add_argument("--alpha", type=float, help="significance level (default 0.05)")
+    analysis.add_argument("--check-direction", choices=CHECK_DIRECTIONS,
                           help="Dunnett: both sides, or one-sided 'above' or 'below' the checks")
-    analysis.add_argument("--lower-is-better", metavar="TRAIT", action="append", default=[],
-                          help="trait whose lowest mean ranks first (e.g. days to heading)")
     parser.add_argument("--json", metavar="PATH", help="write the JSON result to PATH ('-': "
                         "standard output, instead of the readable summary)")
+
+
+def _add_import_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--output", "-o", metavar="TRIAL", required=True,
+                        help="the trial file to make (.trial), or an existing one to update")
+    parser.add_argument("--layout", choices=("long", "wide"), default="long",
+                        help="long: one row per plot (default); wide: entries as rows and one "
+                        "column per replicate, holding the trait named by --trait")
+    _add_role_options(parser)
+    facts = parser.add_argument_group("trial facts")
+    facts.add_argument("--name", help="trial name (default: the field book's file name)")
+    facts.add_argument("--station", help="station or location")
+    facts.add_argument("--season", help="season, e.g. 2026 main")
+    facts.add_argument("--crop", help="crop; also picks the default standard moisture")
+    facts.add_argument("--design", choices=("rcbd", "crd"), default="rcbd")
+    facts.add_argument("--plot-area", metavar="M2", type=float,
+                       help="harvested area of a plot in square metres")
+    facts.add_argument("--standard-moisture", metavar="PCT", type=float,
+                       help="moisture to adjust grain yield to (default: the crop's usual one)")
+    derived = parser.add_argument_group("grain yield from plot weight")
+    derived.add_argument("--yield-from", metavar="COL",
+                         help="plot weight column to compute grain yield from")
+    derived.add_argument("--weight-unit", choices=("kg", "g"), default="kg")
+    derived.add_argument("--moisture", metavar="COL",
+                         help="grain moisture column (%%), to adjust yield to standard moisture")
+    derived.add_argument("--yield-unit", choices=("t/ha", "kg/ha", "bu/ac"), default="t/ha")
+    derived.add_argument("--yield-name", default="grain_yield",
+                         help="name of the computed trait (default grain_yield)")
+    parser.add_argument("--apply", action="store_true",
+                        help="re-import: make the changes shown (without it, nothing changes)")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -53,47 +90,145 @@ def build_parser() -> argparse.ArgumentParser:
         description="Analyse replicated variety trials. Without a sub-command, opens the program.",
     )
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    analyze = sub.add_parser("analyze", help="analyse a field book (CSV or XLSX)",
-                             description="Analyse a field book and print the trial summary.")
-    analyze.add_argument("fieldbook", help="field book file: CSV (, ; or tab) or XLSX")
+    analyze = sub.add_parser("analyze", help="analyse a field book or a trial file",
+                             description="Analyse a trial and print the trial summary.")
+    analyze.add_argument("fieldbook", metavar="FILE",
+                         help="trial file (.trial) or field book: CSV (, ; or tab) or XLSX")
     _add_analysis_options(analyze)
     demo = sub.add_parser("demo", help="analyse the bundled demo trial and print the summary")
     demo.add_argument("--json", metavar="PATH", help="write the JSON result to PATH or '-'")
+    imp = sub.add_parser("import", help="make a trial file from a field book",
+                         description="Make a trial file from a field book, or show (and with "
+                         "--apply make) the changes a re-import into an existing trial brings.")
+    imp.add_argument("fieldbook", metavar="FIELDBOOK", help="CSV or XLSX field book")
+    _add_import_options(imp)
+    exp = sub.add_parser("export", help="write a trial's plots as a field book",
+                         description="Write the plot data of a trial file as a long field book.")
+    exp.add_argument("trial", metavar="TRIAL", help="the trial file (.trial)")
+    exp.add_argument("--output", "-o", metavar="FILE", required=True,
+                     help="the field book to write: .csv or .xlsx")
+    exp.add_argument("--blank", action="store_true",
+                     help="leave the trait columns empty: a field book to fill in")
+    exp.add_argument("--trait", metavar="NAME", action="append", default=None,
+                     help="only these traits (repeat for several)")
     return parser
 
 
-def _settings_from(args: argparse.Namespace):
+def _settings_from(args: argparse.Namespace, saved: dict):
+    """Options given on the command line win over the settings saved in a trial file."""
     from trialdesk.core.results import AnalysisSettings
 
-    return AnalysisSettings(
-        design=args.design,
-        method=args.method,
-        alpha=args.alpha,
-        checks=tuple(args.check),
-        check_direction=args.check_direction,
-        traits=tuple(args.trait),
-        lower_is_better=tuple(args.lower_is_better),
+    given = {
+        "design": args.design,
+        "method": args.method,
+        "alpha": args.alpha,
+        "checks": args.check,
+        "check_direction": args.check_direction,
+        "traits": args.trait or None,
+        "lower_is_better": args.lower_is_better,
+    }
+    merged = {**saved, **{k: v for k, v in given.items() if v is not None}}
+    return AnalysisSettings.from_dict(merged)
+
+
+def _read_book(args: argparse.Namespace):
+    from trialdesk.core.fieldbook import read_fieldbook
+
+    if getattr(args, "layout", "long") == "wide":
+        from trialdesk.core.wide_fieldbook import read_wide_fieldbook
+
+        if not args.trait or len(args.trait) != 1:
+            raise TrialInputError("a wide field book holds one trait: name it with --trait")
+        return read_wide_fieldbook(args.fieldbook, trait=args.trait[0], entry=args.entry,
+                                   sheet=args.sheet, decimal_comma=args.decimal_comma)
+    return read_fieldbook(
+        args.fieldbook, sheet=args.sheet, entry=args.entry, block=args.block,
+        plot=args.plot, row=args.row, column=args.column,
+        traits=args.trait or None, decimal_comma=args.decimal_comma,
     )
 
 
+def _is_trial(path: str) -> bool:
+    return path.lower().endswith(".trial")
+
+
+def _book_and_settings(args: argparse.Namespace):
+    if args.command == "demo":
+        from trialdesk.core.demo import DEMO_SETTINGS, demo_fieldbook_path
+        from trialdesk.core.fieldbook import read_fieldbook
+
+        return read_fieldbook(demo_fieldbook_path()), DEMO_SETTINGS
+    if _is_trial(args.fieldbook):
+        from trialdesk.core.trial_fieldbook import fieldbook_from_trial, trial_settings
+        from trialdesk.core.trialfile import TrialFile
+
+        with TrialFile.open(args.fieldbook, read_only=True) as trial:
+            return fieldbook_from_trial(trial), _settings_from(args, trial_settings(trial))
+    return _read_book(args), _settings_from(args, {})
+
+
+def _run_import(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from trialdesk.core.importer import (
+        YieldRecipe,
+        apply_reimport,
+        import_fieldbook,
+        plan_reimport,
+    )
+    from trialdesk.core.trialfile import TrialFile
+
+    book = _read_book(args)
+    if Path(args.output).exists():
+        with TrialFile.open(args.output, read_only=not args.apply) as trial:
+            plan = plan_reimport(trial, book)
+            print(plan.text())
+            if args.apply and not plan.is_empty:
+                apply_reimport(trial, book, plan)
+                print(f"Applied to {args.output}.")
+            elif not plan.is_empty:
+                print("Nothing was changed; run again with --apply to make these changes.")
+        return EXIT_OK
+    facts = {"name": args.name, "station": args.station, "season": args.season,
+             "crop": args.crop, "design": args.design, "harvested_area_m2": args.plot_area,
+             "standard_moisture_pct": args.standard_moisture}
+    recipe = None
+    if args.yield_from:
+        recipe = YieldRecipe(name=args.yield_name, weight=args.yield_from,
+                             weight_unit=args.weight_unit, moisture=args.moisture,
+                             unit=args.yield_unit)
+        if args.plot_area is None:
+            raise TrialInputError("grain yield from plot weight needs the harvested area of a "
+                                  "plot: give --plot-area in square metres")
+    report = import_fieldbook(book, args.output,
+                              facts={k: v for k, v in facts.items() if v is not None},
+                              checks=tuple(args.check or ()),
+                              lower_is_better=tuple(args.lower_is_better or ()), recipe=recipe)
+    print(report.text())
+    return EXIT_OK
+
+
+def _run_export(args: argparse.Namespace) -> int:
+    from trialdesk.core.exporter import export_fieldbook
+    from trialdesk.core.trialfile import TrialFile
+
+    with TrialFile.open(args.trial, read_only=True) as trial:
+        n = export_fieldbook(trial, args.output, traits=args.trait, blank=args.blank)
+    print(f"Wrote {n} plots to {args.output}.")
+    return EXIT_OK
+
+
 def _run(args: argparse.Namespace) -> int:
+    if args.command == "import":
+        return _run_import(args)
+    if args.command == "export":
+        return _run_export(args)
     from trialdesk.core.analysis import analyze
     from trialdesk.core.atomic import write_atomic
-    from trialdesk.core.demo import DEMO_SETTINGS, demo_fieldbook_path
-    from trialdesk.core.fieldbook import read_fieldbook
     from trialdesk.core.json_output import analysis_to_json
     from trialdesk.core.summary_text import analysis_text
 
-    if args.command == "demo":
-        book = read_fieldbook(demo_fieldbook_path())
-        settings = DEMO_SETTINGS
-    else:
-        book = read_fieldbook(
-            args.fieldbook, sheet=args.sheet, entry=args.entry, block=args.block,
-            plot=args.plot, row=args.row, column=args.column,
-            traits=args.trait or None, decimal_comma=args.decimal_comma,
-        )
-        settings = _settings_from(args)
+    book, settings = _book_and_settings(args)
     result = analyze(book, settings)
     if args.json == "-":
         sys.stdout.write(analysis_to_json(result) + "\n")

@@ -43,6 +43,18 @@ class AnalysisSettings:
     traits: tuple[str, ...] = ()
     lower_is_better: tuple[str, ...] = ()
 
+    def to_dict(self) -> dict:
+        """Plain data, as saved in a trial file and printed in reports."""
+        return {f.name: (list(v) if isinstance(v := getattr(self, f.name), tuple) else v)
+                for f in fields(self)}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> AnalysisSettings:
+        """Settings from :meth:`to_dict` output; unknown keys are ignored (newer files)."""
+        known = {f.name: f for f in fields(cls)}
+        given = {k: tuple(v) if isinstance(v, list) else v for k, v in data.items() if k in known}
+        return cls(**given)
+
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class AnovaRow:
