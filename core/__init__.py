@@ -21,6 +21,8 @@ _PUBLIC = {
     "InputWarning": "errors",
     "TrialInputError": "errors",
     "FieldBook": "fieldbook",
+    "TrialFile": "trialfile",
+    "TrialLockedError": "trialfile",
     "read_fieldbook": "fieldbook",
     "analysis_to_dict": "json_output",
     "analysis_to_json": "json_output",
