@@ -185,8 +185,11 @@ def _validate_settings(book: FieldBook, settings: AnalysisSettings) -> tuple[str
     return tuple(traits)
 
 
-def analyze(book: FieldBook, settings: AnalysisSettings | None = None) -> TrialAnalysis:
+def analyze(book: FieldBook, settings: AnalysisSettings | None = None, *,
+            notes: Sequence[str] = ()) -> TrialAnalysis:
     """Analyse every requested trait of a field book.
+
+    ``notes`` are carried into the result for reports (e.g. how a derived yield was computed).
 
     Examples
     --------
@@ -219,5 +222,6 @@ def analyze(book: FieldBook, settings: AnalysisSettings | None = None) -> TrialA
         software_version=VERSION,
         traits=tuple(results),
         warnings=(*(str(w) for w in book.warnings), *skipped),
+        notes=tuple(notes),
     )
 

@@ -95,7 +95,10 @@ def build_parser() -> argparse.ArgumentParser:
     analyze.add_argument("fieldbook", metavar="FILE",
                          help="trial file (.trial) or field book: CSV (, ; or tab) or XLSX")
     _add_analysis_options(analyze)
-    demo = sub.add_parser("demo", help="analyse the bundled demo trial and print the summary")
+    demo = sub.add_parser("demo", help="open the demo trial; with --print, analyse it and print "
+                          "the summary instead")
+    demo.add_argument("--print", action="store_true",
+                      help="print the demo trial's summary (no window)")
     demo.add_argument("--json", metavar="PATH", help="write the JSON result to PATH or '-'")
     imp = sub.add_parser("import", help="make a trial file from a field book",
                          description="Make a trial file from a field book, or show (and with "
@@ -157,14 +160,19 @@ def _book_and_settings(args: argparse.Namespace):
         from trialdesk.core.demo import DEMO_SETTINGS, demo_fieldbook_path
         from trialdesk.core.fieldbook import read_fieldbook
 
-        return read_fieldbook(demo_fieldbook_path()), DEMO_SETTINGS
+        return read_fieldbook(demo_fieldbook_path()), DEMO_SETTINGS, []
     if _is_trial(args.fieldbook):
-        from trialdesk.core.trial_fieldbook import fieldbook_from_trial, trial_settings
+        from trialdesk.core.trial_fieldbook import (
+            derivation_notes,
+            fieldbook_from_trial,
+            trial_settings,
+        )
         from trialdesk.core.trialfile import TrialFile
 
         with TrialFile.open(args.fieldbook, read_only=True) as trial:
-            return fieldbook_from_trial(trial), _settings_from(args, trial_settings(trial))
-    return _read_book(args), _settings_from(args, {})
+            return (fieldbook_from_trial(trial), _settings_from(args, trial_settings(trial)),
+                    derivation_notes(trial))
+    return _read_book(args), _settings_from(args, {}), []
 
 
 def _run_import(args: argparse.Namespace) -> int:
@@ -228,8 +236,8 @@ def _run(args: argparse.Namespace) -> int:
     from trialdesk.core.json_output import analysis_to_json
     from trialdesk.core.summary_text import analysis_text
 
-    book, settings = _book_and_settings(args)
-    result = analyze(book, settings)
+    book, settings, notes = _book_and_settings(args)
+    result = analyze(book, settings, notes=notes)
     if args.json == "-":
         sys.stdout.write(analysis_to_json(result) + "\n")
         return EXIT_OK

@@ -10,22 +10,30 @@ sees it in the spreadsheet, and the column. Suspicious but usable input becomes 
 
 The file is opened once, read-only, and its bytes are both parsed and checksummed, so the checksum
 always describes exactly what was read.
+
+The rules for a single cell (what is a number, what is missing) and the checks on plot numbers and
+entry codes live in :mod:`trialdesk.core.value_checks`, shared with the desktop grid. The steps
+that turn a file into a table of named columns are shared with the wide-layout reader
+(:mod:`trialdesk.core.wide_fieldbook`).
+
+Each column is held as its distinct cells and a code per row, so the rules for a cell run once
+per distinct cell: a trait column of 100,000 plots usually holds a few hundred distinct texts.
 """
 
 from __future__ import annotations
 
 import codecs
 import csv
-import datetime as dt
 import difflib
 import hashlib
 import io
+import itertools
 import math
 import os
 import re
 import warnings
 import zipfile
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -33,6 +41,21 @@ import pandas as pd
 from scipy import stats
 
 from trialdesk.core.errors import InputWarning, TrialInputError
+from trialdesk.core.value_checks import (
+    MISSING_MARKERS,
+    cell_text,
+    design_kind,
+    is_missing_text,
+    looks_like_number,
+    parse_cell,
+    parse_cells,
+    plain_numbers,
+    quote_cell,
+    repeated_in_blocks,
+    repeated_plots,
+    same_code_key,
+    similar_entry_codes,
+)
 
 __all__ = ["ROLE_NAMES", "FieldBook", "check_design", "read_fieldbook"]
 
@@ -47,9 +70,6 @@ ROLE_NAMES: dict[str, tuple[str, ...]] = {
     "column": ("column", "col", "range"),
 }
 
-# Cell texts read as a missing value, compared after stripping spaces and case-insensitively.
-_MISSING = frozenset({"", "na", ".", "-", "*"})
-
 # A workbook that would unpack to more than this is refused before it is opened: field books are
 # a few megabytes at most, and a small file that unpacks to gigabytes is an attack, not a trial.
 MAX_UNPACKED_BYTES = 500 * 1024**2
@@ -60,10 +80,15 @@ _OLE_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"  # legacy .xls, and password-pr
 _DELIMITERS = (",", ";", "\t")
 _SNIFF_CHARS = 64 * 1024
 _SNIFF_ROWS = 50
+# Rows are turned into columns this many at a time: each row's list is then freed at once, so
+# the garbage collector never has to walk a hundred thousand live row lists.
+_ROWS_AT_A_TIME = 256
+_SAMPLE_CELLS = 1_000
 
-_DOT_NUMBER = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
-_COMMA_NUMBER = re.compile(r"[+-]?(?:[0-9]+(?:,[0-9]*)?|,[0-9]+)(?:[eE][+-]?[0-9]+)?")
 _CONTROL_CHARS = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f\x7f]")
+# The same characters as bytes: in UTF-8, Windows-1252 and Latin-1 alike each is one byte of the
+# same value, and no other character contains such a byte.
+_CONTROL_BYTES = bytes([*range(0x00, 0x09), 0x0B, 0x0C, *range(0x0E, 0x20), 0x7F])
 
 # Rules of thumb for values to re-check against the field book (common practice): more than ten
 # times the trait's median (a slipped decimal point), or a robust z beyond 6, with the median
@@ -117,14 +142,54 @@ class FieldBook:
     warnings: tuple[InputWarning, ...]
 
 
+# What a cell is, as far as finding the header, the blank rows and the trait columns goes.
+_BLANK, _MISSING, _NUMBER, _OTHER = 0, 1, 2, 3
+
+
+@dataclass(frozen=True, slots=True)
+class _Column:
+    """A column's cells: its distinct cells, and for each row the position of its cell among them.
+
+    Only a column of text is reduced to its distinct cells. Cells of other types can be equal
+    without being the same (1, 1.0 and True; 0.0 and -0.0), so in a column that holds them each
+    cell stays its own.
+    """
+
+    distinct: np.ndarray  # object
+    codes: np.ndarray  # one per row, indexing ``distinct``
+    kinds: np.ndarray  # one per distinct cell: _BLANK, _MISSING, _NUMBER or _OTHER
+    plain: np.ndarray  # one per distinct cell: a plain number written as text (plain_numbers)
+    text: bool  # every cell is text
+
+    def cell(self, row: int) -> object:
+        return self.distinct[self.codes[row]]
+
+    def rows(self, which: np.ndarray) -> _Column:
+        return _Column(self.distinct, self.codes[which], self.kinds, self.plain, self.text)
+
+    def row_kinds(self) -> np.ndarray:
+        return self.kinds[self.codes]
+
+
 @dataclass(frozen=True, slots=True)
 class _Table:
     """The used part of a sheet: named columns, and the plot rows with their spreadsheet numbers."""
 
     source: str
     names: tuple[str, ...]
-    rows: tuple[tuple[object, ...], ...]  # each exactly as wide as ``names``
-    numbers: tuple[int, ...]  # the spreadsheet row number of each row
+    columns: tuple[_Column, ...]  # one per name, each as long as ``numbers``
+    numbers: np.ndarray  # the spreadsheet row number of each row
+
+
+@dataclass(frozen=True, slots=True)
+class _Opened:
+    """A field-book file as read: its name, checksum, table, worksheet and what was noticed."""
+
+    source: str
+    sha256: str
+    table: _Table
+    sheet: str | None
+    warnings: tuple[InputWarning, ...]
 
 
 class _BadCell(Exception):
@@ -190,35 +255,46 @@ def read_fieldbook(
     >>> book.plots["source_row"].tolist()
     [2, 3, 4, 5]
     """
-    source = _source_name(path)
     decimal_comma = bool(decimal_comma)
-    data = _read_bytes(source)
-    table, sheet_used, read_warnings = _read_table(data, source, sheet)
+    opened = _open(path, sheet)
+    table = opened.table
     columns, role_warnings = _find_roles(table, {
         "entry": entry, "block": block, "plot": plot, "row": row, "column": column,
     })
     trait_columns = _find_traits(table, columns, traits, decimal_comma)
     plots = _build_plots(table, columns)
-    values = _build_values(table, trait_columns, decimal_comma)
+    values = pd.DataFrame(
+        {table.names[i]: _trait_values(table, i, decimal_comma) for i in trait_columns},
+        columns=[table.names[i] for i in trait_columns],
+    )
     found = (
-        read_warnings
+        list(opened.warnings)
         + role_warnings
-        + _value_warnings(values, plots["source_row"], source)
-        + _entry_code_warnings(plots, source, table.names[columns["entry"]])
+        + _value_warnings(values, plots["source_row"], opened.source)
+        + _entry_code_warnings(plots, opened.source, table.names[columns["entry"]])
     )
     return FieldBook(
         plots=plots,
         values=values,
         traits=tuple(values.columns),
         roles={role: None if i is None else table.names[i] for role, i in columns.items()},
-        source=source,
-        sha256=hashlib.sha256(data).hexdigest(),
-        sheet=sheet_used,
+        source=opened.source,
+        sha256=opened.sha256,
+        sheet=opened.sheet,
         warnings=tuple(found),
     )
 
 
 # --- reading the file ---------------------------------------------------------------------------
+
+
+def _open(path: object, sheet: str | None) -> _Opened:
+    """Read the file once, checksum its bytes and find its table of named columns."""
+    source = _source_name(path)
+    data = _read_bytes(source)
+    table, sheet_used, found = _read_table(data, source, sheet)
+    return _Opened(source=source, sha256=hashlib.sha256(data).hexdigest(), table=table,
+                   sheet=sheet_used, warnings=tuple(found))
 
 
 def _source_name(path: object) -> str:
@@ -273,11 +349,12 @@ def _read_table(
 def _read_csv(data: bytes, source: str) -> _Table:
     text = _decode(data, source)
     delimiter = _sniff_delimiter(text)
+    records = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
     try:
-        records = list(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter))
+        cells = _grid_columns(records, fill="")  # in a CSV file an absent cell is empty text
     except csv.Error as exc:
         raise TrialInputError(f"the file cannot be read as CSV ({exc})", file=source) from exc
-    return _table_from_grid(enumerate(records, start=1), source)
+    return _table_from_columns(cells, source, text=True)
 
 
 def _decode(data: bytes, source: str) -> str:
@@ -288,9 +365,10 @@ def _decode(data: bytes, source: str) -> str:
             raise TrialInputError(
                 "the file starts like UTF-16 text but is not valid UTF-16", file=source
             ) from exc
+        controls = len(_CONTROL_CHARS.findall(text))
     else:
         text = _decode_8bit(data)
-    controls = len(_CONTROL_CHARS.findall(text))
+        controls = len(data) - len(data.translate(None, _CONTROL_BYTES))  # counted fast
     if "\x00" in text or controls > len(text) // 100:
         raise TrialInputError(
             "this is neither a CSV text file nor an Excel workbook (.xlsx)", file=source
@@ -350,7 +428,7 @@ def _read_workbook(
             f"the workbook is damaged and cannot be read ({type(exc).__name__}: {exc})",
             file=source,
         ) from exc
-    table = _table_from_grid(enumerate(results, start=1), source)
+    table = _table_from_columns(_grid_columns(results, fill=None), source)
     return table, title, _formulas_without_results(results, written, source)
 
 
@@ -403,7 +481,8 @@ def _check_archive(data: bytes, source: str) -> None:
     try:
         with zipfile.ZipFile(io.BytesIO(data)) as archive:
             members = archive.infolist()
-    except (zipfile.BadZipFile, zipfile.LargeZipFile, OSError, ValueError, EOFError) as exc:
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, NotImplementedError, OSError, ValueError,
+            EOFError) as exc:  # NotImplementedError: a zip version or feature it cannot read
         raise TrialInputError(
             f"the workbook is damaged: it cannot be opened as a zip archive ({exc})", file=source
         ) from exc
@@ -441,32 +520,82 @@ def _pick_sheet(book: object, source: str, sheet: str | None) -> object:
 # --- the table: header, columns, rows -----------------------------------------------------------
 
 
-def _table_from_grid(grid: Iterable[tuple[int, Sequence[object]]], source: str) -> _Table:
-    """Header from the first non-blank row; blank rows dropped; unnamed empty columns dropped."""
-    rows = [(number, tuple(cells)) for number, cells in grid if not _blank_row(cells)]
-    if not rows:
+def _grid_columns(rows: Iterable[Sequence[object]], fill: object) -> list[list[object]]:
+    """The grid's columns, from row 1 down, every one padded with ``fill`` to the longest row."""
+    rows = iter(rows)
+    columns: list[list[object]] = []
+    height = 0
+    while chunk := list(itertools.islice(rows, _ROWS_AT_A_TIME)):
+        parts = list(itertools.zip_longest(*chunk, fillvalue=fill))
+        columns += [[fill] * height for _ in range(len(columns), len(parts))]
+        for index, cells in enumerate(columns):
+            cells.extend(parts[index] if index < len(parts) else [fill] * len(chunk))
+        height += len(chunk)
+    return columns
+
+
+def _column(cells: list[object], text: bool) -> _Column:
+    array = np.fromiter(cells, dtype=object, count=len(cells))
+    text = text or pd.api.types.infer_dtype(array, skipna=False) == "string"
+    if text and not _mostly_distinct(array):
+        codes, distinct = pd.factorize(array)
+        distinct = np.asarray(distinct, dtype=object)
+    else:
+        codes, distinct = np.arange(len(array)), array
+    plain = plain_numbers(distinct) if text else np.zeros(len(array), dtype=bool)
+    kinds = np.full(len(distinct), _NUMBER, dtype=np.int8)  # what a plain number is
+    others = np.flatnonzero(~plain)
+    kinds[others] = np.fromiter(map(_kind, distinct[others]), dtype=np.int8, count=len(others))
+    return _Column(distinct=distinct, codes=codes, kinds=kinds, plain=plain, text=text)
+
+
+def _mostly_distinct(cells: np.ndarray) -> bool:
+    """Nine in ten cells differ, judged from 1,000 spread over the column (plot numbers, say).
+
+    Such a column gains nothing from being reduced to its distinct cells; the judgement only
+    decides how fast a column is read, never what is read from it.
+    """
+    sample = cells[:: max(1, len(cells) // _SAMPLE_CELLS)]
+    return len(sample) >= _SAMPLE_CELLS and len(set(sample)) > 0.9 * len(sample)
+
+
+def _kind(cell: object) -> int:
+    if _blank(cell):
+        return _BLANK
+    if _is_missing(cell):
+        return _MISSING
+    return _NUMBER if _looks_numeric(cell) else _OTHER
+
+
+def _table_from_columns(cells: list[list[object]], source: str, *, text: bool = False
+                        ) -> _Table:
+    """Header from the first non-blank row; blank rows dropped; unnamed empty columns dropped.
+
+    ``text``: every cell is known to be text (as in a CSV file), so no column need be inspected.
+    """
+    columns = [_column(column, text) for column in cells]
+    filled = np.zeros(len(cells[0]) if cells else 0, dtype=bool)
+    for column in columns:
+        filled |= column.row_kinds() != _BLANK
+    used = np.flatnonzero(filled)
+    if not len(used):
         raise TrialInputError("the file is empty: it has no header row", file=source)
-    (header_number, header), body = rows[0], rows[1:]
-    if not body:
+    header, body = int(used[0]), used[1:]
+    if not len(body):
         raise TrialInputError(
-            f"the file has a header (row {header_number}) but no plot rows", file=source
+            f"the file has a header (row {header + 1}) but no plot rows", file=source
         )
-    names = [_header_name(cell) for cell in header]
-    width = max(len(names), max(len(cells) for _, cells in body))
-    names += [""] * (width - len(names))
+    names = [_header_name(column.cell(header)) for column in columns]
     for index, name in enumerate(names):
         if not name:
-            _refuse_values_without_name(body, index, source)
+            _refuse_values_without_name(columns[index].rows(body), body + 1, index, source)
     keep = [i for i, name in enumerate(names) if name]
     _check_unique_names([names[i] for i in keep], keep, source)
-    padded = tuple(
-        tuple(cells[i] if i < len(cells) else None for i in keep) for _, cells in body
-    )
     return _Table(
         source=source,
         names=tuple(names[i] for i in keep),
-        rows=padded,
-        numbers=tuple(number for number, _ in body),
+        columns=tuple(columns[i].rows(body) for i in keep),
+        numbers=body + 1,
     )
 
 
@@ -474,25 +603,21 @@ def _blank(cell: object) -> bool:
     return cell is None or (isinstance(cell, str) and not cell.strip())
 
 
-def _blank_row(cells: Sequence[object]) -> bool:
-    return all(_blank(cell) for cell in cells)
-
-
 def _header_name(cell: object) -> str:
-    return "" if cell is None else _label_text(cell).strip()
+    return "" if cell is None else cell_text(cell).strip()
 
 
-def _refuse_values_without_name(body: list[tuple[int, tuple[object, ...]]], index: int,
+def _refuse_values_without_name(column: _Column, numbers: np.ndarray, index: int,
                                 source: str) -> None:
-    for number, cells in body:
-        if index < len(cells) and not _blank(cells[index]):
-            raise TrialInputError(
-                f"column {_position_name(index)} has a value ({_shown(cells[index])}) but no "
-                "name in the header row; give it a name, or check for a separator inside a "
-                "value (for example a decimal comma in a comma-separated file)",
-                file=source,
-                row=number,
-            )
+    row = _first_row(column, column.kinds != _BLANK)
+    if row is not None:
+        raise TrialInputError(
+            f"column {_position_name(index)} has a value ({_shown(column.cell(row))}) but no "
+            "name in the header row; give it a name, or check for a separator inside a "
+            "value (for example a decimal comma in a comma-separated file)",
+            file=source,
+            row=int(numbers[row]),
+        )
 
 
 def _check_unique_names(names: list[str], positions: list[int], source: str) -> None:
@@ -532,7 +657,11 @@ def _role_key(name: str) -> str:
 def _find_roles(
     table: _Table, explicit: dict[str, str | None]
 ) -> tuple[dict[str, int | None], list[InputWarning]]:
-    """Column index for each role: the columns the caller named, then the usual names."""
+    """Column index for each role asked for: the columns the caller named, then the usual names.
+
+    ``explicit`` maps each role to look for (always including "entry") to the column name the
+    caller gave, or None to look for it under its usual names.
+    """
     columns: dict[str, int | None] = {}
     given_by: dict[int, str] = {}
     for role, wanted in explicit.items():
@@ -548,9 +677,10 @@ def _find_roles(
         given_by[index] = role
         columns[role] = index
     found: list[InputWarning] = []
-    for role, names in ROLE_NAMES.items():
+    for role in explicit:
         if role in columns:
             continue
+        names = ROLE_NAMES[role]
         candidates = sorted(
             (names.index(_role_key(name)), i)
             for i, name in enumerate(table.names)
@@ -572,7 +702,7 @@ def _find_roles(
             f"{_quoted(table.names)}. Name the column that holds the entry codes",
             file=table.source,
         )
-    return {role: columns[role] for role in ROLE_NAMES}, found
+    return {role: columns[role] for role in explicit}, found
 
 
 def _resolve_column(table: _Table, wanted: object, what: str) -> int:
@@ -621,7 +751,7 @@ def _find_traits(
         i for i, name in enumerate(table.names)
         if i not in role_of
         and _role_key(name) not in all_role_names
-        and _holds_numbers([cells[i] for cells in table.rows])
+        and _holds_numbers(table.columns[i])
     ]
     if not found:
         raise TrialInputError(
@@ -641,15 +771,17 @@ def _as_list(traits: object, source: str) -> list[object]:
         ) from exc
 
 
-def _holds_numbers(cells: list[object]) -> bool:
+def _holds_numbers(column: _Column) -> bool:
     """At least half of the non-missing cells look like numbers, in either decimal convention.
 
     Such a column is a trait; its cells that are not numbers are then reported as errors rather
     than the column being silently left out.
     """
-    present = [cell for cell in cells if not _is_missing(cell)]
-    looks = sum(_looks_numeric(cell) for cell in present)
-    return bool(present) and 2 * looks >= len(present)
+    present = column.kinds >= _NUMBER
+    looks = column.kinds == _NUMBER
+    counts = np.bincount(column.codes, minlength=len(column.distinct))
+    n_present, n_looks = counts[present].sum(), counts[looks].sum()
+    return bool(n_present) and 2 * n_looks >= n_present
 
 
 def _looks_numeric(cell: object) -> bool:
@@ -657,35 +789,73 @@ def _looks_numeric(cell: object) -> bool:
         return False
     if isinstance(cell, int | float):
         return True
-    text = str(cell).strip()
-    return bool(_DOT_NUMBER.fullmatch(text) or _COMMA_NUMBER.fullmatch(text))
+    return looks_like_number(str(cell))
 
 
 # --- cells --------------------------------------------------------------------------------------
 
 
+def _first_row(column: _Column, distinct: np.ndarray) -> int | None:
+    """The first row whose cell is one of the distinct cells marked True."""
+    rows = distinct[column.codes]
+    return int(np.argmax(rows)) if rows.any() else None
+
+
+def _outcomes(column: _Column, rule: Callable[[object], object], refused_as: object = None
+              ) -> tuple[list[object], dict[int, str]]:
+    """The rule applied once to each distinct cell, and the reasons for the cells it refused."""
+    try:
+        return list(map(rule, column.distinct)), {}  # the usual case: no cell is refused
+    except _BadCell:
+        pass
+    results: list[object] = []
+    refused: dict[int, str] = {}
+    for k, cell in enumerate(column.distinct):
+        try:
+            results.append(rule(cell))
+        except _BadCell as exc:
+            results.append(refused_as)
+            refused[k] = str(exc)
+    return results, refused
+
+
+def _refuse_first(table: _Table, index: int, refused: dict[int, str], advice: str = "") -> None:
+    """Raise for the first row whose cell the rule refused, if any row has one."""
+    column = table.columns[index]
+    marked = np.zeros(len(column.distinct), dtype=bool)
+    marked[list(refused)] = True
+    row = _first_row(column, marked)
+    if row is not None:
+        raise TrialInputError(
+            refused[int(column.codes[row])] + advice,
+            file=table.source, row=int(table.numbers[row]), column=table.names[index],
+        )
+
+
+def _objects(items: list[object]) -> np.ndarray:
+    return np.fromiter(items, dtype=object, count=len(items))
+
+
 def _is_missing(cell: object) -> bool:
-    return cell is None or (isinstance(cell, str) and cell.strip().casefold() in _MISSING)
-
-
-def _label_text(cell: object) -> str:
-    """Text of a label cell: numbers as a spreadsheet shows them (1.0 is "1")."""
-    if isinstance(cell, bool):
-        return "TRUE" if cell else "FALSE"
-    if isinstance(cell, float) and math.isfinite(cell) and cell.is_integer():
-        return str(int(cell))
-    if isinstance(cell, dt.datetime | dt.date | dt.time):
-        return cell.isoformat()
-    return str(cell)
+    return cell is None or (isinstance(cell, str) and is_missing_text(cell))
 
 
 def _label(cell: object) -> str | None:
-    return None if _is_missing(cell) else _label_text(cell).strip()
+    if isinstance(cell, str):  # most cells: the same rule as below, in fewer steps
+        text = cell.strip()
+        return None if text.casefold() in MISSING_MARKERS else text
+    return None if cell is None else cell_text(cell).strip()
 
 
 def _number(cell: object, decimal_comma: bool) -> float:
     """The cell as a float, NaN when missing; raises _BadCell with the reason otherwise."""
-    if _is_missing(cell):
+    if isinstance(cell, str):
+        try:
+            value = parse_cell(cell, decimal_comma=decimal_comma)
+        except TrialInputError as exc:
+            raise _BadCell(exc.message) from None
+        return math.nan if value is None else value
+    if cell is None:
         return math.nan
     if isinstance(cell, bool):
         raise _BadCell(f"{_shown(cell)} is not a number")
@@ -693,36 +863,11 @@ def _number(cell: object, decimal_comma: bool) -> float:
         value = cell
     elif isinstance(cell, int):
         value = float(cell) if abs(cell) < 2**1023 else math.inf  # float() would overflow
-    elif isinstance(cell, str):
-        value = _text_number(cell.strip(), decimal_comma)
     else:
         raise _BadCell(f"{_shown(cell)} is not a number")
     if not math.isfinite(value):
         raise _BadCell(f"{_shown(cell)} is not a usable number")
     return value
-
-
-def _text_number(text: str, decimal_comma: bool) -> float:
-    if decimal_comma:
-        if _COMMA_NUMBER.fullmatch(text):
-            return float(text.replace(",", "."))
-        if _DOT_NUMBER.fullmatch(text):
-            raise _BadCell(
-                f"'{text}' has a decimal point, but the file is read with a decimal comma; "
-                "write every number the same way"
-            )
-    else:
-        if _DOT_NUMBER.fullmatch(text):
-            return float(text)
-        if _COMMA_NUMBER.fullmatch(text):
-            raise _BadCell(
-                f"'{text}' is not a number with a decimal point; if this file writes decimals "
-                "with a comma, read it with the decimal comma option (decimal_comma=True)"
-            )
-    raise _BadCell(
-        f"'{text}' is not a number (a trait value is a number, or empty, NA, ., - or * when "
-        "missing)"
-    )
 
 
 def _whole_number(cell: object) -> int | None:
@@ -738,21 +883,21 @@ def _whole_number(cell: object) -> int | None:
 
 
 def _shown(cell: object) -> str:
-    text = _label_text(cell)
-    return f"'{text[:40]}...'" if len(text) > 40 else f"'{text}'"
+    return quote_cell(cell_text(cell))
 
 
 # --- building the result ------------------------------------------------------------------------
 
 
 def _build_plots(table: _Table, columns: dict[str, int | None]) -> pd.DataFrame:
+    count = len(table.numbers)
     entries = _labels(table, columns["entry"], "no entry code in this plot row")
-    blocks: list[str | None] = (
-        [None] * len(table.rows) if columns["block"] is None
+    blocks = (
+        np.full(count, None, dtype=object) if columns["block"] is None
         else _labels(table, columns["block"], "no block (replicate) label in this plot row")
     )
     if columns["plot"] is None:
-        plots = [str(i) for i in range(1, len(table.rows) + 1)]
+        plots = np.array([str(i) for i in range(1, count + 1)], dtype=object)
     else:
         plots = _labels(table, columns["plot"], "no plot number in this plot row")
         _check_unique_plots(table, plots, table.names[columns["plot"]])
@@ -760,70 +905,77 @@ def _build_plots(table: _Table, columns: dict[str, int | None]) -> pd.DataFrame:
         "entry": pd.Series(entries, dtype="str"),
         "block": pd.Series(blocks, dtype="str" if columns["block"] is not None else object),
         "plot": pd.Series(plots, dtype="str"),
-        "row": pd.array(_positions(table, columns["row"]), dtype="Int64"),
-        "column": pd.array(_positions(table, columns["column"]), dtype="Int64"),
-        "source_row": np.array(table.numbers, dtype=np.int64),
+        "row": _positions(table, columns["row"]),
+        "column": _positions(table, columns["column"]),
+        "source_row": np.asarray(table.numbers, dtype=np.int64),
     })
 
 
-def _labels(table: _Table, index: int, if_empty: str) -> list[str]:
-    labels = []
-    for number, cells in zip(table.numbers, table.rows, strict=True):
-        label = _label(cells[index])
-        if not label:
-            raise TrialInputError(
-                if_empty, file=table.source, row=number, column=table.names[index]
-            )
-        labels.append(label)
-    return labels
+def _labels(table: _Table, index: int, if_empty: str) -> np.ndarray:
+    """The label of each row (text as the spreadsheet shows it); raises for an empty one."""
+    column = table.columns[index]
+    labels = column.distinct.copy()  # a plain number is its own label
+    others = np.flatnonzero(~column.plain)
+    labels[others] = _objects([_label(cell) for cell in column.distinct[others]])
+    empty = np.zeros(len(labels), dtype=bool)
+    empty[others] = [not label for label in labels[others]]
+    row = _first_row(column, empty)
+    if row is not None:
+        raise TrialInputError(
+            if_empty, file=table.source, row=int(table.numbers[row]), column=table.names[index]
+        )
+    return labels[column.codes]
 
 
-def _positions(table: _Table, index: int | None) -> list[int | None]:
+def _positions(table: _Table, index: int | None) -> pd.arrays.IntegerArray:
     if index is None:
-        return [None] * len(table.rows)
-    positions = []
-    for number, cells in zip(table.numbers, table.rows, strict=True):
-        try:
-            positions.append(_whole_number(cells[index]))
-        except _BadCell as exc:
-            raise TrialInputError(
-                f"{exc} (the field row and column are whole numbers)",
-                file=table.source, row=number, column=table.names[index],
-            ) from None
-    return positions
+        return _unknown_positions(len(table.numbers))
+    column = table.columns[index]
+    positions, refused = _outcomes(column, _whole_number)
+    _refuse_first(table, index, refused, " (the field row and column are whole numbers)")
+    unknown = np.fromiter((p is None for p in positions), dtype=bool, count=len(positions))
+    known = np.fromiter((0 if p is None else p for p in positions), dtype=np.int64,
+                        count=len(positions))
+    return pd.arrays.IntegerArray(known[column.codes], unknown[column.codes])
 
 
-def _check_unique_plots(table: _Table, plots: list[str], name: str) -> None:
-    first_row: dict[str, int] = {}
-    for label, number in zip(plots, table.numbers, strict=True):
-        if label in first_row:
-            raise TrialInputError(
-                f"plot number '{label}' appears twice (rows {first_row[label]} and {number}); "
-                "each plot has its own number",
-                file=table.source, row=number, plot=label, column=name,
-            )
-        first_row[label] = number
+def _unknown_positions(count: int) -> pd.arrays.IntegerArray:
+    return pd.arrays.IntegerArray(np.zeros(count, dtype=np.int64), np.ones(count, dtype=bool))
 
 
-def _build_values(table: _Table, trait_columns: list[int], decimal_comma: bool) -> pd.DataFrame:
-    data = {}
-    for index in trait_columns:
-        values = np.empty(len(table.rows), dtype=np.float64)
-        for k, (number, cells) in enumerate(zip(table.numbers, table.rows, strict=True)):
-            try:
-                values[k] = _number(cells[index], decimal_comma)
-            except _BadCell as exc:
-                raise TrialInputError(
-                    str(exc), file=table.source, row=number, column=table.names[index],
-                ) from None
-        data[table.names[index]] = values
-    return pd.DataFrame(data, columns=[table.names[i] for i in trait_columns])
+def _check_unique_plots(table: _Table, plots: np.ndarray, name: str) -> None:
+    repeats = repeated_plots(plots, table.numbers)
+    if repeats:
+        first = repeats[0]
+        raise TrialInputError(
+            first.message, file=table.source, row=first.row, plot=first.label, column=name
+        )
+
+
+def _trait_values(table: _Table, index: int, decimal_comma: bool) -> np.ndarray:
+    """The column's values as floats, NaN where missing; raises for the first bad cell."""
+    column = table.columns[index]
+    if column.text:
+        values, refused = parse_cells(column.distinct, decimal_comma=decimal_comma,
+                                      plain=column.plain)
+    else:
+        outcomes, refused = _outcomes(column, lambda cell: _number(cell, decimal_comma),
+                                      math.nan)
+        values = np.fromiter(outcomes, dtype=np.float64, count=len(outcomes))
+    _refuse_first(table, index, refused)
+    return values[column.codes]
 
 
 # --- warnings -----------------------------------------------------------------------------------
 
 
-def _value_warnings(values: pd.DataFrame, rows: pd.Series, source: str) -> list[InputWarning]:
+def _value_warnings(values: pd.DataFrame, rows: pd.Series, source: str,
+                    read_from: pd.Series | None = None) -> list[InputWarning]:
+    """Negative values and values far from the rest, trait by trait.
+
+    ``read_from`` names the file column each plot's value was read from, when that is not the
+    trait's own column (in the wide layout, the replicate's column).
+    """
     found = []
     for trait in values.columns:
         column = values[trait]
@@ -832,12 +984,14 @@ def _value_warnings(values: pd.DataFrame, rows: pd.Series, source: str) -> list[
             found.append(_cells_warning(
                 "negative", column[negative], rows[negative], trait, source,
                 "check the sign, or whether the trait can be negative",
+                None if read_from is None else read_from[negative],
             ))
         far = _far_from_the_rest(column)
         if far.any():
             found.append(_cells_warning(
                 "far from the rest of the column", column[far], rows[far], trait, source,
                 f"the median is {column.median():g}; check them against the field book",
+                None if read_from is None else read_from[far],
             ))
     return found
 
@@ -858,39 +1012,34 @@ def _far_from_the_rest(column: pd.Series) -> pd.Series:
 
 
 def _cells_warning(kind: str, values: pd.Series, rows: pd.Series, trait: str, source: str,
-                   advice: str) -> InputWarning:
-    pairs = list(zip(values, rows, strict=True))[:_LIST_AT_MOST]
-    shown = ", ".join(f"{value:g} (row {row})" for value, row in pairs)
+                   advice: str, read_from: pd.Series | None) -> InputWarning:
+    places = [f"row {row}" for row in rows[:_LIST_AT_MOST]]
+    if read_from is not None:
+        places = [f"{place}, column '{name}'" for place, name in zip(
+            places, read_from[:_LIST_AT_MOST], strict=True)]
+    shown = ", ".join(f"{value:g} ({place})" for value, place in zip(values, places,
+                                                                       strict=False))
     more = f" and {len(values) - _LIST_AT_MOST} more" if len(values) > _LIST_AT_MOST else ""
     count = "1 value" if len(values) == 1 else f"{len(values)} values"
+    if read_from is None:
+        column = trait
+    else:
+        column = read_from.iloc[0] if read_from.nunique() == 1 else None
     return InputWarning(
         message=f"{count} {kind}: {shown}{more}; {advice}",
         file=source,
         row=int(rows.iloc[0]) if len(rows) == 1 else None,
-        column=trait,
+        column=column,
     )
 
 
 def _entry_code_warnings(plots: pd.DataFrame, source: str, entry_name: str) -> list[InputWarning]:
     """Entry codes that differ only in case or spaces ("G-12" and "g-12"): likely one entry."""
-    first_row: dict[str, int] = {}
-    for code, number in zip(plots["entry"], plots["source_row"], strict=True):
-        first_row.setdefault(code, int(number))
-    spellings: dict[str, list[str]] = {}
-    for code in first_row:
-        spellings.setdefault(re.sub(r"\s+", "", code.casefold()), []).append(code)
-    found = []
-    for codes in spellings.values():
-        if len(codes) > 1:
-            rows = ", ".join(f"'{c}' first in row {first_row[c]}" for c in codes)
-            found.append(InputWarning(
-                message=f"entry codes that differ only in case or spaces ({rows}) are treated as "
-                "different entries; correct them if they are one entry",
-                file=source,
-                row=first_row[codes[1]],
-                column=entry_name,
-            ))
-    return found
+    return [
+        InputWarning(message=similar.message, file=source, row=similar.row, column=entry_name)
+        for similar in similar_entry_codes(plots["entry"].to_numpy(dtype=object),
+                                           plots["source_row"].to_numpy(dtype=object))
+    ]
 
 
 def _quoted(names: Sequence[str], conjunction: str = "") -> str:
@@ -940,12 +1089,10 @@ def check_design(
 
 
 def _design_kind(design: object, source: str) -> str:
-    kind = design.strip().casefold() if isinstance(design, str) else None
-    if kind not in ("rcbd", "crd"):
-        raise TrialInputError(
-            f"unknown design {design!r}; use 'rcbd' (blocks) or 'crd' (no blocks)", file=source
-        )
-    return kind
+    try:
+        return design_kind(design)
+    except TrialInputError as exc:
+        raise TrialInputError(exc.message, file=source) from None
 
 
 def _design_traits(book: FieldBook, traits: object) -> list[str]:
@@ -976,17 +1123,14 @@ def _check_blocks(book: FieldBook) -> None:
             f"an RCBD needs at least two blocks, and the file has one ('{blocks.iloc[0]}')",
             file=book.source, column=name,
         )
-    first_row: dict[tuple[str, str], int] = {}
-    for entry, block, number in zip(book.plots["entry"], blocks, book.plots["source_row"],
-                                    strict=True):
-        if (entry, block) in first_row:
-            raise TrialInputError(
-                f"entry '{entry}' appears twice in block '{block}' (rows "
-                f"{first_row[entry, block]} and {number}); in an RCBD each entry has one plot "
-                "per block",
-                file=book.source, row=int(number), column=book.roles["entry"],
-            )
-        first_row[entry, block] = int(number)
+    repeats = repeated_in_blocks(book.plots["entry"].to_numpy(dtype=object),
+                                 blocks.to_numpy(dtype=object),
+                                 book.plots["source_row"].to_numpy(dtype=object))
+    if repeats:
+        first = repeats[0]
+        raise TrialInputError(
+            first.message, file=book.source, row=first.row, column=book.roles["entry"]
+        )
 
 
 def _check_entries_have_data(book: FieldBook, trait: str) -> None:
@@ -1035,8 +1179,8 @@ def _check_checks(book: FieldBook, checks: object) -> None:
         if check in entries:
             continue
         text = str(check)
-        key = re.sub(r"\s+", "", text.casefold())
-        same = [e for e in entries if re.sub(r"\s+", "", e.casefold()) == key]
+        key = same_code_key(text)
+        same = [e for e in entries if same_code_key(e) == key]
         folded = {e.casefold(): e for e in entries}
         near = [folded[m] for m in difflib.get_close_matches(text.casefold(), list(folded), n=3)]
         close = list(dict.fromkeys(same + near))

@@ -70,6 +70,7 @@ def analysis_to_dict(analysis: TrialAnalysis) -> dict:
         "check_direction": s.check_direction,
         "traits": [trait_to_dict(t) for t in analysis.traits],
         "warnings": list(analysis.warnings),
+        "notes": list(analysis.notes),
         "cautions": CAUTIONS,
     })
 

@@ -225,6 +225,7 @@ class TrialAnalysis:
     software_version: str
     traits: tuple[TraitResult, ...]
     warnings: tuple[str, ...]
+    notes: tuple[str, ...] = ()  # how derived traits were computed, and similar facts
 
     def trait(self, name: str) -> TraitResult:
         """The result of the trait called ``name``."""

@@ -112,6 +112,8 @@ def analysis_text(analysis: TrialAnalysis) -> str:
         f"Method: {METHOD_NAMES[s.method]}, alpha {s.alpha:g}"
         + (f", check comparisons {s.check_direction}" if s.method == "dunnett" else ""),
     ]
+    for note in analysis.notes:
+        head += _wrap(f"Note: {note}", indent="")
     for warning in analysis.warnings:
         head += _wrap(f"Warning: {warning}", indent="")
     blocks = [trait_text(t, bool(s.checks)) for t in analysis.traits]

@@ -27,7 +27,8 @@ def script() -> list[str]:
 
 
 def test_demo_prints_summary_with_cautions():
-    done = subprocess.run([*script(), "demo"], capture_output=True, text=True, timeout=120)
+    done = subprocess.run([*script(), "demo", "--print"], capture_output=True, text=True,
+                          timeout=120)
     assert done.returncode == 0, done.stderr
     out = " ".join(done.stdout.split())  # the summary wraps long sentences
     assert "grain_yield" in out and "CHK-1" in out and "Letters" in out
@@ -61,7 +62,7 @@ def test_json_contract(capsys):
 
 def test_json_file_and_summary(tmp_path, capsys):
     out = tmp_path / "result.json"
-    assert main(["demo", "--json", str(out)]) == 0
+    assert main(["demo", "--print", "--json", str(out)]) == 0
     assert "grain_yield" in capsys.readouterr().out
     assert json.loads(out.read_text(encoding="utf-8"))["schema_version"] == 1
     assert [p.name for p in tmp_path.iterdir()] == ["result.json"]  # no temporary left behind
