@@ -419,8 +419,8 @@ def _read_workbook(
             # openpyxl warns about workbook features it does not keep (validation, styles...);
             # they do not touch cell values.
             warnings.simplefilter("ignore", UserWarning)
-            title, results = _sheet_rows(data, source, sheet, data_only=True)
-            _, written = _sheet_rows(data, source, title, data_only=False)
+            title, results, part = _sheet_rows(data, source, sheet, data_only=True)
+            _, written, _ = _sheet_rows(data, source, title, data_only=False)
     except TrialInputError:
         raise
     except Exception as exc:  # a damaged workbook can fail anywhere inside openpyxl
@@ -428,21 +428,74 @@ def _read_workbook(
             f"the workbook is damaged and cannot be read ({type(exc).__name__}: {exc})",
             file=source,
         ) from exc
+    results, merged = _unmerge(results, _merged_ranges(data, part), source)
     table = _table_from_columns(_grid_columns(results, fill=None), source)
-    return table, title, _formulas_without_results(results, written, source)
+    return table, title, [*merged, *_formulas_without_results(results, written, source)]
+
+
+_MERGE = re.compile(rb'<(?:\w+:)?mergeCell\s+ref="([A-Z]+)([0-9]+):([A-Z]+)([0-9]+)"')
+
+
+def _merged_ranges(data: bytes, part: str | None) -> list[tuple[int, int, int, int]]:
+    """Merged cell ranges of a sheet as (first row, first column, last row, last column), 1-based,
+    read from the sheet's XML (read-only openpyxl does not report them)."""
+    if not part:
+        return []
+    with zipfile.ZipFile(io.BytesIO(data)) as archive:
+        try:
+            xml = archive.read(part.lstrip("/"))
+        except KeyError:
+            return []
+    return [(int(r1), _column_number(c1.decode()), int(r2), _column_number(c2.decode()))
+            for c1, r1, c2, r2 in _MERGE.findall(xml)]
+
+
+def _column_number(letters: str) -> int:
+    number = 0
+    for char in letters:
+        number = number * 26 + ord(char) - ord("A") + 1
+    return number
+
+
+def _unmerge(rows: list[tuple[object, ...]], ranges: list[tuple[int, int, int, int]],
+             source: str) -> tuple[list[tuple[object, ...]], list[InputWarning]]:
+    """Give every cell of a merged range the value of its top-left cell (a replicate merged down
+    its plots means that replicate in each of them), and say so in a warning."""
+    if not ranges:
+        return rows, []
+    grid = [list(r) for r in rows]
+    shown = []
+    for r1, c1, r2, c2 in ranges:
+        if r1 > len(grid):
+            continue
+        anchor = grid[r1 - 1][c1 - 1] if c1 - 1 < len(grid[r1 - 1]) else None
+        for r in range(r1, min(r2, len(grid)) + 1):
+            row = grid[r - 1]
+            row.extend([None] * (c2 - len(row)))
+            for c in range(c1, c2 + 1):
+                row[c - 1] = anchor
+        shown.append(f"{_column_letter(c1)}{r1}:{_column_letter(c2)}{r2}")
+    listed = ", ".join(shown[:_LIST_AT_MOST]) + (" ..." if len(shown) > _LIST_AT_MOST else "")
+    warning = InputWarning(
+        message=f"merged cells ({listed}) were read as their top-left value in every cell; "
+        "check that this is what the merge meant",
+        file=source, row=ranges[0][0] if len(ranges) == 1 else None)
+    return [tuple(r) for r in grid], [warning]
 
 
 def _sheet_rows(
     data: bytes, source: str, sheet: str | None, *, data_only: bool
-) -> tuple[str, list[tuple[object, ...]]]:
-    """Every row of the sheet from row 1, as stored results or, without data_only, as written."""
+) -> tuple[str, list[tuple[object, ...]], str | None]:
+    """Every row of the sheet from row 1, as stored results or, without data_only, as written,
+    and the sheet's part name inside the archive."""
     import openpyxl  # only workbooks need it: CSV reading and batch start-up stay light
 
     book = openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=data_only)
     try:
         worksheet = _pick_sheet(book, source, sheet)
         worksheet.reset_dimensions()  # the stored size may be wrong: read every row
-        return worksheet.title, list(worksheet.iter_rows(min_row=1, values_only=True))
+        rows = list(worksheet.iter_rows(min_row=1, values_only=True))
+        return worksheet.title, rows, getattr(worksheet, "_worksheet_path", None)
     finally:
         book.close()
 

@@ -944,3 +944,23 @@ def test_workbook_cells_never_escape_as_another_error(fuzz_folder: Path,
             check_design(book, design="rcbd", traits=book.traits)
         except TrialInputError as error:
             assert str(error)
+
+
+def test_merged_cells_take_their_top_left_value_with_a_warning(tmp_path):
+    # A replicate number merged down its plots (a common way to lay out a sheet) means that
+    # replicate in every merged cell; the reader fills it in and says so.
+    book = openpyxl.Workbook()
+    sheet = book.active
+    sheet.append(["rep", "entry", "yield"])
+    for rep in (1, 2):
+        for entry, value in (("A", 5.0), ("B", 6.0), ("C", 5.5)):
+            sheet.append([rep, entry, value + rep / 10])
+    sheet["A3"] = None
+    sheet["A4"] = None
+    sheet.merge_cells("A2:A4")
+    sheet.merge_cells("A5:A7")
+    path = tmp_path / "merged.xlsx"
+    book.save(path)
+    read = read_fieldbook(path)
+    assert list(read.plots["block"]) == ["1", "1", "1", "2", "2", "2"]
+    assert any("merged cells (A2:A4, A5:A7)" in str(w) for w in read.warnings)
