@@ -80,9 +80,13 @@ def derivation_notes(trial: TrialFile) -> list[str]:
 
 def trial_values(trial: TrialFile) -> pd.DataFrame:
     """Plot values of every trait, derived traits computed; index = plot, in field order."""
-    values = trial.values()
-    facts = trial.facts()
-    for row in trial.traits().itertuples(index=False):
+    return with_derived(trial.values(), trial.traits(), trial.facts())
+
+
+def with_derived(values: pd.DataFrame, traits: pd.DataFrame, facts: dict) -> pd.DataFrame:
+    """``values`` with the derived traits' columns computed from the stored ones."""
+    values = values.copy()
+    for row in traits.itertuples(index=False):
         if row.derivation:
             values[row.name] = _derive(values, row.derivation, facts, row.name)
     return values

@@ -1,7 +1,9 @@
 """Entry point of the ``trialdesk`` command.
 
-Batch sub-commands (``analyze``, ``demo``) run in trialdesk.core without loading Qt, so the command
-line stays quick and works on machines with no display.
+Without a sub-command (or with a trial file or field book to open) it starts the desktop program;
+``trialdesk demo`` opens it on the demo trial. The batch sub-commands (``analyze``, ``import``,
+``export``, and ``demo --print``) run in trialdesk.core without loading Qt, so the command line
+stays quick and works on machines with no display.
 """
 
 from __future__ import annotations
@@ -9,13 +11,29 @@ from __future__ import annotations
 import sys
 from collections.abc import Sequence
 
+BATCH_COMMANDS = ("analyze", "import", "export")
+
+
+def _is_batch(args: list[str]) -> bool:
+    if not args:
+        return False
+    first = args[0]
+    if first in BATCH_COMMANDS or first in ("-h", "--help"):
+        return True
+    return first == "demo" and any(a in ("--print", "--json") or a.startswith("--json=")
+                                   for a in args[1:])
+
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the ``trialdesk`` command; returns the exit status."""
-    from trialdesk.core.cli import main as batch_main
-
     args = list(sys.argv[1:] if argv is None else argv)
-    return batch_main(args or ["--help"])
+    if _is_batch(args):
+        from trialdesk.core.cli import main as batch_main
+
+        return batch_main(args)
+    from trialdesk.desktop.app import run
+
+    return run(args)
 
 
 if __name__ == "__main__":
