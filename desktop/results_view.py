@@ -232,8 +232,6 @@ def _table(model, sortable: bool = True) -> QTableView:
     view.setWordWrap(False)
     view.horizontalHeader().setDefaultAlignment(CENTRE)
     view.verticalHeader().setDefaultSectionSize(view.fontMetrics().height() + 8)
-    for header in (view.horizontalHeader(), view.verticalHeader()):
-        header.setResizeContentsPrecision(200)  # widths from the first rows of long tables
     return view
 
 
@@ -246,8 +244,11 @@ def _sorter(model: FrameModel) -> QSortFilterProxyModel:
 
 def _fit_columns(view: QTableView, rows_shown: bool = False) -> None:
     """Columns as wide as their text; with ``rows_shown``, the table as tall as its rows."""
-    view.resizeColumnsToContents()
     header = view.horizontalHeader()
+    # Measure the first 60 rows only: a pairs table has thousands, and measuring every one would
+    # pause the window for half a second.
+    header.setResizeContentsPrecision(60)
+    view.resizeColumnsToContents()
     for section in range(header.count()):
         header.resizeSection(section, header.sectionSize(section) + 16)
     if rows_shown:
