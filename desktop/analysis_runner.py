@@ -241,7 +241,10 @@ class Background(QObject):
                 outcome = work()
             except TrialInputError as error:
                 outcome = error
-            self._finished.emit(key, token, outcome)
+            try:
+                self._finished.emit(key, token, outcome)
+            except RuntimeError:  # the window closed while this ran: nobody wants the outcome
+                pass
 
         self._pool.start(_Job(run))
 

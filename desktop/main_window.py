@@ -441,8 +441,8 @@ class MainWindow(QMainWindow):
         settings.setValue("window/geometry", self.saveGeometry())
         settings.setValue("window/state", self.saveState())
         settings.setValue("window/tab", self.tabs.currentIndex())
-        if self.runner is not None and self.runner.is_running():
-            self.runner.cancel()
+        if self.runner is not None:
+            self.runner.shutdown()
         if self.session is not None:
             self.session.close()
         super().closeEvent(event)

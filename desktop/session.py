@@ -180,6 +180,7 @@ class TrialSession(QObject):
             self._recheck()
             self.values_changed.emit(changed)
             self.structure_changed.emit()
+            self.settings_changed.emit()  # the step may have been a change of settings
         self.undo_changed.emit(self.trial.can_undo(), self.trial.can_redo())
         return done
 
@@ -242,8 +243,10 @@ class TrialSession(QObject):
 
     def save_settings(self, settings: AnalysisSettings) -> None:
         """Keep the analysis settings in the trial file."""
-        self._require().save_settings(settings.to_dict())
+        trial = self._require()
+        trial.save_settings(settings.to_dict())
         self.settings_changed.emit()
+        self.undo_changed.emit(trial.can_undo(), trial.can_redo())  # settings are undoable
 
     def fieldbook(self):
         """The plot data as a field book for trialdesk.core.analysis."""
