@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import replace
 from pathlib import Path
 
@@ -185,11 +185,20 @@ def _validate_settings(book: FieldBook, settings: AnalysisSettings) -> tuple[str
     return tuple(traits)
 
 
+class AnalysisCancelled(Exception):
+    """Raised by :func:`analyze` when its ``should_stop`` callback asks it to stop."""
+
+
 def analyze(book: FieldBook, settings: AnalysisSettings | None = None, *,
-            notes: Sequence[str] = ()) -> TrialAnalysis:
+            notes: Sequence[str] = (),
+            progress: Callable[[int, int, str], object] | None = None,
+            should_stop: Callable[[], bool] | None = None) -> TrialAnalysis:
     """Analyse every requested trait of a field book.
 
     ``notes`` are carried into the result for reports (e.g. how a derived yield was computed).
+    ``progress(done, total, trait)`` is called before each trait and once at the end (with
+    ``done == total``); ``should_stop()`` is asked between traits, and when it answers True the
+    run stops with :class:`AnalysisCancelled` (the desktop program's cancel button).
 
     Examples
     --------
@@ -203,7 +212,11 @@ def analyze(book: FieldBook, settings: AnalysisSettings | None = None, *,
     settings = settings or AnalysisSettings()
     traits = _validate_settings(book, settings)
     results, skipped = [], []
-    for trait in traits:
+    for done, trait in enumerate(traits):
+        if should_stop is not None and should_stop():
+            raise AnalysisCancelled
+        if progress is not None:
+            progress(done, len(traits), trait)
         try:
             results.append(analyze_trait(book, trait, settings))
         except TrialInputError as error:
@@ -212,6 +225,10 @@ def analyze(book: FieldBook, settings: AnalysisSettings | None = None, *,
             if len(traits) == 1:
                 raise
             skipped.append(f"trait '{trait}' was not analysed: {error.message}")
+    if should_stop is not None and should_stop():
+        raise AnalysisCancelled
+    if progress is not None:
+        progress(len(traits), len(traits), "")
     if not results:
         raise TrialInputError("no trait could be analysed: " + "; ".join(skipped),
                               file=book.source)

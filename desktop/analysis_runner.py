@@ -15,37 +15,20 @@ from __future__ import annotations
 import threading
 import traceback
 from collections.abc import Callable
-from dataclasses import replace
-from pathlib import Path
 from typing import Any
 
 from PySide6.QtCore import QObject, QRunnable, QThread, QThreadPool, Signal, Slot
 
-from trialdesk.core.analysis import _validate_settings, analyze_trait
+from trialdesk.core.analysis import AnalysisCancelled, analyze
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.fieldbook import FieldBook
 from trialdesk.core.results import AnalysisSettings, TrialAnalysis
 from trialdesk.core.trial_fieldbook import derivation_notes
-from trialdesk.core.version import VERSION
 from trialdesk.desktop.session import TrialSession
 
 # A least-squares fit of up to this many plots takes a few tens of milliseconds: the views do
 # it on the GUI thread; larger trials go to the background.
 QUICK_PLOTS = 2000
-
-
-def _analysis(book: FieldBook, settings: AnalysisSettings, results: list, skipped: list,
-              notes: list[str]) -> TrialAnalysis:
-    """The TrialAnalysis of the traits analysed, assembled as analyze() assembles it."""
-    return TrialAnalysis(
-        settings=replace(settings, traits=tuple(r.trait for r in results)),
-        source=Path(book.source).name,
-        sha256=book.sha256,
-        software_version=VERSION,
-        traits=tuple(results),
-        warnings=(*(str(w) for w in book.warnings), *skipped),
-        notes=tuple(notes),
-    )
 
 
 class _Worker(QObject):
@@ -78,27 +61,11 @@ class _Worker(QObject):
                 self.finished.emit(outcome)
 
     def _analyse(self) -> TrialAnalysis | None:
-        book, settings = self._book, self._settings
-        traits = _validate_settings(book, settings)
-        results, skipped = [], []
-        for done, trait in enumerate(traits):
-            if self._stop.is_set():
-                return None
-            self.progress.emit(done, len(traits), trait)
-            try:
-                results.append(analyze_trait(book, trait, settings))
-            except TrialInputError as error:
-                # As in analyze(): one unusable trait is reported, not fatal, unless it is alone.
-                if len(traits) == 1:
-                    raise
-                skipped.append(f"trait '{trait}' was not analysed: {error.message}")
-        if self._stop.is_set():
+        try:
+            return analyze(self._book, self._settings, notes=self._notes,
+                           progress=self.progress.emit, should_stop=self._stop.is_set)
+        except AnalysisCancelled:
             return None
-        self.progress.emit(len(traits), len(traits), "")
-        if not results:
-            raise TrialInputError("no trait could be analysed: " + "; ".join(skipped),
-                                  file=book.source)
-        return _analysis(book, settings, results, skipped, self._notes)
 
 
 class AnalysisRunner(QObject):
