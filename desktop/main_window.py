@@ -330,9 +330,11 @@ class MainWindow(QMainWindow):
 
     def _on_finished(self, results) -> None:
         self._analysis_done()
+        # Show the results page first, so hidden pages (the set-up read-out) wait until they
+        # are looked at instead of recomputing now.
+        self.tabs.setCurrentWidget(self.results_view)
         self.session.set_results(results)
         self.statusBar().showMessage("Analysis done.", 5000)
-        self.tabs.setCurrentWidget(self.results_view)
 
     def _on_failed(self, message: str) -> None:
         self._analysis_done()

@@ -20,6 +20,7 @@ from PySide6.QtCore import (
     QPersistentModelIndex,
     QSortFilterProxyModel,
     Qt,
+    QTimer,
     Signal,
 )
 from PySide6.QtGui import QColor, QFont
@@ -270,6 +271,7 @@ class ResultsView(QWidget):
 
     def __init__(self, session: TrialSession, parent: QWidget | None = None) -> None:
         super().__init__(parent)
+        self.laid_out = True  # every table shows the current results (see _show_trait)
         self.session = session
         self._book = None  # the field book as analysed (taken when results arrive)
         self._residuals: dict[str, pd.DataFrame] = {}
@@ -452,15 +454,35 @@ class ResultsView(QWidget):
         unit, decimals = self._trait_info(result)
         self._show_headline(result, unit, decimals)
         self._show_entries(result, decimals)
-        self._show_anova(result, decimals)
-        self._show_pairs(result, decimals)
-        self._show_fit(result, decimals)
-        self._show_summary(results)
-        for model in (self.entry_model, self.anova_model, self.pair_model, self.flagged_model,
-                      self.tests_model, self.summary_model):
+        self.entry_model.set_stale(stale)
+        # The other tables follow one per turn of the event loop, so the window keeps answering
+        # while a large result is laid out; ``laid_out`` is True once all are in place. The
+        # timers are bound to this view, so none fires after it is gone.
+        self.laid_out = False
+        self._generation = getattr(self, "_generation", 0) + 1
+        generation = self._generation
+        steps = [lambda: self._show_anova(result, decimals),
+                 lambda: self._show_pairs(result, decimals),
+                 lambda: self._show_fit(result, decimals),
+                 lambda: self._show_summary(results),
+                 lambda: self._finish_trait(stale)]
+
+        def next_step() -> None:
+            if generation != self._generation:
+                return
+            steps.pop(0)()
+            if steps:
+                QTimer.singleShot(0, self, next_step)
+
+        QTimer.singleShot(0, self, next_step)
+
+    def _finish_trait(self, stale: bool) -> None:
+        for model in (self.anova_model, self.pair_model, self.flagged_model, self.tests_model,
+                      self.summary_model):
             model.set_stale(stale)
         self._charts_for = None
         self._draw_charts()
+        self.laid_out = True
 
     def _show_headline(self, result: TraitResult, unit: str, decimals: int) -> None:
         d = decimals + 1

@@ -201,6 +201,7 @@ def shown(qtbot, session):
     qtbot.addWidget(view)
     view.resize(1280, 820)
     view.show()
+    qtbot.waitUntil(lambda: view.laid_out, timeout=WAIT_MS)
     return view
 
 
@@ -302,6 +303,7 @@ def test_dunnett_results_mark_entries_above_the_check(qtbot, session, shot):
     session.set_results(reference(session, settings))
     view = ResultsView(session)
     qtbot.addWidget(view)
+    qtbot.waitUntil(lambda: view.laid_out, timeout=WAIT_MS)
     result = session.results.trait("grain_yield")
     keys = [c.key for c in view.entry_model.columns]
     assert "letters" not in keys  # Dunnett does not compare every pair
