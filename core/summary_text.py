@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import textwrap
 
+import numpy as np
+
 from trialdesk.core.cautions import CAUTIONS
 from trialdesk.core.results import TraitResult, TrialAnalysis
 from trialdesk.core.separation import METHOD_NAMES
@@ -60,12 +62,22 @@ def _entry_lines(result: TraitResult, has_checks: bool) -> list[str]:
     return lines
 
 
+def _level(value: float) -> str:
+    """A small probability in plain decimals, two significant digits: 0.0000081, not 8.1e-06.
+
+    >>> _level(8.1e-06), _level(0.05), _level(0.000312)
+    ('0.0000081', '0.05', '0.00031')
+    """
+    return np.format_float_positional(value, precision=2, unique=True, fractional=False,
+                                      trim="-")
+
+
 def family_sentence(result: TraitResult) -> str:
     """The multiple-comparison arithmetic in one plain sentence."""
     f = result.family
     what = "comparisons with the checks" if result.method == "dunnett" else "pairs"
-    level = (f"{f.per_comparison_min:.2g}" if f.per_comparison_min == f.per_comparison_max
-             else f"{f.per_comparison_min:.2g} to {f.per_comparison_max:.2g}")
+    level = (_level(f.per_comparison_min) if f.per_comparison_min == f.per_comparison_max
+             else f"{_level(f.per_comparison_min)} to {_level(f.per_comparison_max)}")
     chance = ("more than 0.999" if f.familywise_unadjusted > 0.999
               else f"{f.familywise_unadjusted:.3f}")
     return (f"{f.m} {what}: {f.m} unadjusted tests at {result.alpha:g} would show at least one "

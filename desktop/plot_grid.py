@@ -151,6 +151,9 @@ class _GridView(QTableView):
                 return
             if event.key() == Qt.Key.Key_Escape and self._grid._discard_draft():
                 return
+            if event.key() in (Qt.Key.Key_Delete, Qt.Key.Key_Backspace) and plain:
+                self._grid.clear_selection()
+                return
         super().keyPressEvent(event)
 
 
@@ -345,6 +348,17 @@ class PlotGrid(QWidget):
         cells = (bottom - top + 1) * (right - left + 1)
         self._tell(f"Copied {cells} cell{'s' if cells != 1 else ''}.")
         return text
+
+    def clear_selection(self) -> bool:
+        """Mark the selected trait cells missing, as one undoable edit (Delete or Backspace)."""
+        cells = []
+        for index in self.view.selectionModel().selectedIndexes():
+            source = self.proxy.mapToSource(index)
+            if self.model.is_editable_column(source.column()):
+                cells.append((source.row(), source.column(), ""))
+        if not cells:
+            return False
+        return self.model.write_texts(cells) is None
 
     def paste(self) -> bool:
         """Paste a block of cells from the clipboard, from the current cell, as one edit.

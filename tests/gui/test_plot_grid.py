@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 
+import pandas as pd
 import pytest
 from PySide6.QtCore import QItemSelection, QItemSelectionModel, Qt
 from PySide6.QtWidgets import QAbstractItemView, QApplication
@@ -313,3 +314,11 @@ def test_large_trial_builds_scrolls_and_keeps_computed_traits_read_only(large_tr
     finally:
         session.close()
     assert TrialFile.open(large_trial, read_only=True).values().at["20500", "plot_weight"] == 4.8
+
+
+def test_delete_marks_the_selected_cells_missing_as_one_edit(grid, session, qtbot):
+    grid.select_plot("101", "grain_yield")
+    qtbot.keyClick(grid.view, Qt.Key.Key_Delete)
+    assert pd.isna(session.trial.values().at["101", "grain_yield"])
+    session.undo()
+    assert session.trial.values().at["101", "grain_yield"] == 5.2
