@@ -23,6 +23,7 @@ import statsmodels.formula.api as smf
 from numpy.testing import assert_allclose
 from scipy import stats
 
+from tests.open_data import oats_fieldbook
 from trialdesk.core.analysis import analyze
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.fieldbook import read_fieldbook
@@ -32,14 +33,8 @@ DATA = Path(__file__).parent / "data"
 
 
 def oats_book(tmp_path, missing=(3, 17, 40)):
-    frame = pd.read_csv(DATA / "oats.csv")
-    frame["entry"] = frame["V"] + ":" + frame["N"]
-    frame = frame.rename(columns={"B": "block", "Y": "yield"})[["block", "entry", "yield"]]
-    frame["yield"] = frame["yield"].astype(float)
-    frame.loc[list(missing), "yield"] = np.nan
-    path = tmp_path / "oats.csv"
-    frame.to_csv(path, index=False)
-    return read_fieldbook(path), frame.dropna()
+    book, frame = oats_fieldbook(tmp_path, missing)
+    return book, frame.dropna()
 
 
 def reference_pairs(frame, methods):

@@ -26,6 +26,7 @@ from numpy.testing import assert_allclose
 from scipy import stats
 from statsmodels.stats.outliers_influence import OLSInfluence
 
+from tests.open_data import oats_fieldbook
 from trialdesk.core import planning
 from trialdesk.core.analysis import analyze
 from trialdesk.core.errors import TrialInputError
@@ -40,14 +41,7 @@ SCALE = np.sqrt(2 / R) * CV
 
 
 def oats(tmp_path, missing=(3, 17, 40)):
-    frame = pd.read_csv(DATA / "oats.csv")
-    frame["entry"] = frame["V"] + ":" + frame["N"]
-    frame = frame.rename(columns={"B": "block", "Y": "yield"})[["block", "entry", "yield"]]
-    frame["yield"] = frame["yield"].astype(float)
-    frame.loc[list(missing), "yield"] = np.nan
-    path = tmp_path / "oats.csv"
-    frame.to_csv(path, index=False)
-    return read_fieldbook(path), frame
+    return oats_fieldbook(tmp_path, missing)
 
 
 def plantgrowth():
