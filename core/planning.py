@@ -9,6 +9,7 @@ Everything here is pure computation on numbers and field books; nothing is round
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 import pandas as pd
@@ -107,6 +108,7 @@ def _check_inputs(n_entries: int, df: float, alpha: float, method: str, n_checks
                               "one check and leave at least one test entry")
 
 
+@lru_cache(maxsize=512)  # a pure function of numbers; the set-up read-out asks again and again
 def critical_values(method: str, alpha: float, n_entries: int, df: float, *, n_checks: int = 0,
                     check_direction: str = "both") -> tuple[float, float]:
     """The per-pair critical value a method compares |difference| / SED with, in a balanced trial.

@@ -202,7 +202,7 @@ class AnalysisSetup(QWidget):
         session.structure_changed.connect(self._reload)
         session.settings_changed.connect(self._settings_changed)
         session.values_changed.connect(self._values_changed)
-        session.results_changed.connect(self._refresh_readout)
+        session.results_changed.connect(self._results_changed)
         self._reload()
 
     # --- building -----------------------------------------------------------------------------
@@ -399,6 +399,12 @@ class AnalysisSetup(QWidget):
         if self.isVisible():
             self._refresh_readout()
         else:  # no fit for every edit made elsewhere while the set-up is not on show
+            self._refresh_when_shown = True
+
+    def _results_changed(self) -> None:
+        if self.isVisible():
+            self._refresh_readout()
+        else:  # worked out when the set-up is next on show, not while the results arrive
             self._refresh_when_shown = True
 
     def showEvent(self, event) -> None:  # noqa: N802

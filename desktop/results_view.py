@@ -23,7 +23,7 @@ from PySide6.QtCore import (
     QTimer,
     Signal,
 )
-from PySide6.QtGui import QColor, QFont
+from PySide6.QtGui import QColor, QFont, QFontMetrics
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QCheckBox,
@@ -244,14 +244,30 @@ def _sorter(model: FrameModel) -> QSortFilterProxyModel:
 
 
 def _fit_columns(view: QTableView, rows_shown: bool = False) -> None:
-    """Columns as wide as their text; with ``rows_shown``, the table as tall as its rows."""
+    """Columns as wide as their text; with ``rows_shown``, the table as tall as its rows.
+
+    The widths are measured here from the model's own text (the first 60 rows, in the bold font
+    where a row is bold), not by ``resizeColumnsToContents``: that asks every cell for every role
+    and paused the window for a tenth of a second on a pairs table.
+    """
     header = view.horizontalHeader()
-    # Measure the first 60 rows only: a pairs table has thousands, and measuring every one would
-    # pause the window for half a second.
-    header.setResizeContentsPrecision(60)
-    view.resizeColumnsToContents()
-    for section in range(header.count()):
-        header.resizeSection(section, header.sectionSize(section) + 16)
+    model = view.model()
+    source = model.sourceModel() if isinstance(model, QSortFilterProxyModel) else model
+    plain_metrics = view.fontMetrics()
+    bold_font = QFont(view.font())
+    bold_font.setBold(True)
+    bold_metrics = QFontMetrics(bold_font)
+    header_metrics = header.fontMetrics()
+    rows = range(min(source.rowCount(), 60))
+    for section in range(source.columnCount()):
+        title = str(source.headerData(section, Qt.Orientation.Horizontal) or "")
+        width = max((header_metrics.horizontalAdvance(line) for line in title.split("\n")),
+                    default=0) + 12  # room for the sort arrow
+        for row in rows:
+            text = source.data(source.index(row, section)) or ""
+            metrics = bold_metrics if source.bold[row] else plain_metrics
+            width = max(width, metrics.horizontalAdvance(str(text)))
+        header.resizeSection(section, width + 16)
     if rows_shown:
         rows = view.model().rowCount()
         height = (header.height() if header.height() > 0 else header.sizeHint().height())
