@@ -29,6 +29,7 @@ from PySide6.QtWidgets import (
     QHeaderView,
     QLabel,
     QLineEdit,
+    QPushButton,
     QStyledItemDelegate,
     QStyleOptionViewItem,
     QTableView,
@@ -216,6 +217,11 @@ class PlotGrid(QWidget):
         self.find_field.setPlaceholderText("Find plot or entry")
         self.find_field.setClearButtonEnabled(True)
         self.find_field.setAccessibleName("Find plot or entry")
+        self.resort_button = QPushButton("Sort again", self)
+        self.resort_button.setToolTip("Rows stay where they are while values are typed; this "
+                                      "puts them back in the order of the sorted column")
+        self.resort_button.setShortcut(QKeySequence(QKeySequence.StandardKey.Refresh))
+        self.resort_button.hide()
         self.status = QLabel(self)
         self.status.setWordWrap(True)
         self.status.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
@@ -227,6 +233,7 @@ class PlotGrid(QWidget):
         bar.addWidget(QLabel("Entry:", self))
         bar.addWidget(self.entry_filter)
         bar.addStretch(1)
+        bar.addWidget(self.resort_button)
         bar.addWidget(self.find_field)
         layout = QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
@@ -238,6 +245,8 @@ class PlotGrid(QWidget):
         self.block_filter.activated.connect(self._filters_chosen)
         self.entry_filter.activated.connect(self._filters_chosen)
         self.model.edit_refused.connect(self._show_message)
+        self.model.order_stale_changed.connect(self.resort_button.setVisible)
+        self.resort_button.clicked.connect(self.model.resort)
         self.model.modelReset.connect(self._rebuilt)
         session.structure_changed.connect(self._fill_filters)
         self._rebuilt()

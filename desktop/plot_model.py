@@ -89,14 +89,19 @@ class PlotTableModel(QAbstractTableModel):
     cell's problems in words, ``BackgroundRole`` the colour of its worst problem (rows of check
     varieties tinted in the label columns), ``TextAlignmentRole`` right for values.
 
-    Rows are numbered as shown: in field order, or as last sorted by :meth:`sort`.
+    Rows are numbered as shown: in field order, or as last sorted by :meth:`sort`. An edit never
+    moves a row (the next plot down stays the next plot while values are typed); when an edit
+    changes the column the rows are sorted by, :attr:`order_stale` turns True until
+    :meth:`resort` or another sort.
 
     Signals
     -------
     edit_refused(str) : a typed text was not written; the message names the plot and the trait.
+    order_stale_changed(bool) : the rows shown no longer follow (or again follow) the sort.
     """
 
     edit_refused = Signal(str)
+    order_stale_changed = Signal(bool)
 
     def __init__(self, session: TrialSession, parent: QObject | None = None) -> None:
         super().__init__(parent)
@@ -104,6 +109,7 @@ class PlotTableModel(QAbstractTableModel):
         self._order: list[int] | None = None  # row shown -> row in field order (None: same)
         self._place: list[int] | None = None  # row in field order -> row shown
         self._sorted_by: tuple[int, Qt.SortOrder] = (-1, Qt.SortOrder.AscendingOrder)
+        self.order_stale = False
         self._load()
         session.opened.connect(self._reset)
         session.structure_changed.connect(self._structure_changed)
@@ -235,6 +241,16 @@ class PlotTableModel(QAbstractTableModel):
         self.changePersistentIndexList(
             persistent, [self.index(self._shown(f), c) for f, c in cells])
         self.layoutChanged.emit()
+        self._set_order_stale(False)
+
+    def resort(self) -> None:
+        """Sort again by the column and order last chosen (after edits left rows in place)."""
+        self.sort(*self._sorted_by)
+
+    def _set_order_stale(self, stale: bool) -> None:
+        if stale != self.order_stale:
+            self.order_stale = stale
+            self.order_stale_changed.emit(stale)
 
     @property
     def sorted_by(self) -> tuple[int, Qt.SortOrder]:
@@ -393,6 +409,7 @@ class PlotTableModel(QAbstractTableModel):
         self._load()
         self._apply_sort()
         self.endResetModel()
+        self._set_order_stale(False)
 
     def _structure_changed(self) -> None:
         """Rebuild when plots or traits changed; otherwise refresh in place (keeps the place)."""
@@ -423,6 +440,9 @@ class PlotTableModel(QAbstractTableModel):
             self._drafts.pop((r, j), None)
             touched.append((r, j))
         self._changed_cells(touched)
+        sorted_trait = self._sorted_by[0] - len(LABELS)
+        if self._order is not None and any(j == sorted_trait for _, j in touched):
+            self._set_order_stale(True)
 
     def _problems_changed(self) -> None:
         before = set(self._cell_kind) | set(self._cell_tip)

@@ -242,6 +242,21 @@ def test_sorting_by_a_trait_and_back_to_field_order(grid, session, qtbot, editor
     assert [grid.proxy.index(r, 0).data() for r in range(3)] == ["101", "102", "103"]
 
 
+def test_an_edit_in_the_sorted_column_offers_to_sort_again(grid, session, qtbot):
+    column = grid.model.trait_column("grain_yield")
+    grid.view.sortByColumn(column, Qt.SortOrder.DescendingOrder)
+    assert not grid.model.order_stale and grid.resort_button.isHidden()
+    last = grid.proxy.index(grid.proxy.rowCount() - 1, 0).data()  # a missing yield: shown last
+    session.set_value("104", "heading_days", 61.0)  # another column: the order still holds
+    assert not grid.model.order_stale
+    session.set_value(last, "grain_yield", 99.0)
+    assert grid.proxy.index(grid.proxy.rowCount() - 1, 0).data() == last  # the row stays put
+    assert grid.model.order_stale and not grid.resort_button.isHidden()
+    qtbot.mouseClick(grid.resort_button, Qt.MouseButton.LeftButton)
+    assert grid.proxy.index(0, 0).data() == last  # now the largest yield, at the top
+    assert not grid.model.order_stale and grid.resort_button.isHidden()
+
+
 def test_value_outside_the_range_is_marked(grid, session, shoot):
     session.set_value("105", "plant_height", 175.0)  # the demo range is 40 to 150 cm
     index = source_index(grid, "105", "plant_height")
