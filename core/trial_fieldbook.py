@@ -133,8 +133,9 @@ def fieldbook_from_trial(trial: TrialFile) -> FieldBook:
 def trial_settings(trial: TrialFile) -> dict:
     """The analysis settings of a trial: those saved in it, filled in from the trial itself.
 
-    The design comes from the trial facts, the checks from the entries marked as checks, and the
-    lower-is-better traits from the traits table, unless saved settings say otherwise.
+    The design comes from the trial facts and the checks from the entries marked as checks,
+    unless saved settings say otherwise. Which traits rank lowest first always comes from the
+    traits table (its direction column is the one place that fact is edited).
     """
     entries = trial.entries()
     traits = trial.traits()
@@ -145,4 +146,5 @@ def trial_settings(trial: TrialFile) -> dict:
         "lower_is_better": [t for t, hib in zip(traits["name"], traits["higher_is_better"],
                                                 strict=True) if not hib],
     }
-    return {**derived, **(trial.settings() or {})}
+    saved = {k: v for k, v in (trial.settings() or {}).items() if k != "lower_is_better"}
+    return {**derived, **saved}

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import pandas as pd
 from PySide6.QtCore import (
-    QAbstractTableModel,
     QModelIndex,
     QObject,
     QPersistentModelIndex,
@@ -17,8 +16,12 @@ from PySide6.QtCore import (
 )
 from PySide6.QtWidgets import (
     QAbstractItemView,
+    QCheckBox,
+    QHBoxLayout,
     QHeaderView,
     QLabel,
+    QLineEdit,
+    QPushButton,
     QTableView,
     QVBoxLayout,
     QWidget,
@@ -26,6 +29,7 @@ from PySide6.QtWidgets import (
 
 from trialdesk.core.errors import TrialInputError
 from trialdesk.desktop.palette import CHECK_BG
+from trialdesk.desktop.record_table import RecordTableModel
 from trialdesk.desktop.session import TrialSession
 
 __all__ = ["EntriesPanel", "EntryTableModel"]
@@ -43,7 +47,7 @@ def _text(cell: object) -> str:
     return "" if cell is None or (not isinstance(cell, str) and pd.isna(cell)) else str(cell)
 
 
-class EntryTableModel(QAbstractTableModel):
+class EntryTableModel(RecordTableModel):
     """The session's entries; name and origin are edited as text, the role by a check box.
 
     Signals
@@ -51,31 +55,8 @@ class EntryTableModel(QAbstractTableModel):
     edit_refused(str) : an edit was not written, and why.
     """
 
-    edit_refused = Signal(str)
-
     def __init__(self, session: TrialSession, parent: QObject | None = None) -> None:
-        super().__init__(parent)
-        self._session = session
-        self._rows: list[dict[str, str]] = []
-        self._load()
-        session.opened.connect(self._reset)
-        session.structure_changed.connect(self._refresh)
-
-    def rowCount(self, parent: _Index = QModelIndex()) -> int:  # noqa: B008 (Qt's signature)
-        return 0 if parent.isValid() else len(self._rows)
-
-    def columnCount(self, parent: _Index = QModelIndex()) -> int:  # noqa: B008
-        return 0 if parent.isValid() else len(COLUMNS)
-
-    def headerData(self, section: int, orientation: Qt.Orientation,
-                   role: int = _Role.DisplayRole) -> object:
-        if orientation != Qt.Orientation.Horizontal or not 0 <= section < len(COLUMNS):
-            return None
-        if role == _Role.DisplayRole:
-            return _HEADERS[COLUMNS[section]]
-        if role == _Role.ToolTipRole:
-            return _TIPS.get(COLUMNS[section])
-        return None
+        super().__init__(session, COLUMNS, _HEADERS, _TIPS, "code", parent)
 
     def flags(self, index: _Index) -> Qt.ItemFlag:
         if not index.isValid():
@@ -129,6 +110,16 @@ class EntryTableModel(QAbstractTableModel):
         """The entry code in a row."""
         return self._rows[row]["code"]
 
+    def add(self, code: str, name: str = "", role: str = "test") -> bool:
+        """Add a new entry at the end of the list; False (with the reason told) if refused."""
+        code = code.strip()
+        try:
+            self._session.add_entry(code, name=name.strip(), role=role)
+        except TrialInputError as exc:
+            self.edit_refused.emit(f"entry not added: {exc.message}")
+            return False
+        return True
+
     def _write(self, code: str, **fields: str) -> bool:
         try:
             self._session.update_entry(code, **fields)
@@ -137,29 +128,12 @@ class EntryTableModel(QAbstractTableModel):
             return False
         return True
 
-    def _load(self) -> None:
+    def load_rows(self) -> list[dict]:
         entries = self._session.entries
         if self._session.trial is None or "code" not in entries.columns:
-            self._rows = []
-            return
-        self._rows = [{"code": _text(e.code), "name": _text(e.name), "role": _text(e.role),
-                       "origin": _text(e.origin)} for e in entries.itertuples(index=False)]
-
-    def _reset(self) -> None:
-        self.beginResetModel()
-        self._load()
-        self.endResetModel()
-
-    def _refresh(self) -> None:
-        """In place when the same entries are listed (keeps the place), otherwise rebuilt."""
-        codes = [row["code"] for row in self._rows]
-        self._load()
-        if [row["code"] for row in self._rows] != codes:
-            self.beginResetModel()
-            self.endResetModel()
-        elif self._rows:
-            self.dataChanged.emit(self.index(0, 0),
-                                  self.index(len(self._rows) - 1, len(COLUMNS) - 1))
+            return []
+        return [{"code": _text(e.code), "name": _text(e.name), "role": _text(e.role),
+                 "origin": _text(e.origin)} for e in entries.itertuples(index=False)]
 
 
 class EntriesPanel(QWidget):
@@ -198,11 +172,32 @@ class EntriesPanel(QWidget):
         self.count = QLabel(self)
         self.message = QLabel(self)
         self.message.setWordWrap(True)
+
+        self.new_code = QLineEdit(self)
+        self.new_code.setPlaceholderText("New entry code")
+        self.new_code.setAccessibleName("New entry code")
+        self.new_name = QLineEdit(self)
+        self.new_name.setPlaceholderText("Name (optional)")
+        self.new_name.setAccessibleName("New entry name")
+        self.new_is_check = QCheckBox("Check", self)
+        self.add_button = QPushButton("Add entry", self)
+        self.add_button.setToolTip("Add the entry to the list; give it plots in the plot data "
+                                   "or in the field book")
+        adding = QHBoxLayout()
+        adding.addWidget(self.new_code)
+        adding.addWidget(self.new_name, 1)
+        adding.addWidget(self.new_is_check)
+        adding.addWidget(self.add_button)
+
         layout = QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
         layout.addWidget(self.count)
         layout.addWidget(self.view, 1)
+        layout.addLayout(adding)
         layout.addWidget(self.message)
+        self.add_button.clicked.connect(self._add)
+        self.new_code.returnPressed.connect(self._add)
+        self.new_name.returnPressed.connect(self._add)
         self.model.edit_refused.connect(self._tell)
         self.model.modelReset.connect(self._rebuilt)
         self.model.dataChanged.connect(self._counted)
@@ -214,6 +209,19 @@ class EntriesPanel(QWidget):
         least = self.fontMetrics().horizontalAdvance("M" * 10)
         for column in range(len(COLUMNS) - 1):
             self.view.setColumnWidth(column, max(self.view.columnWidth(column), least))
+
+    def _add(self) -> None:
+        code = self.new_code.text()
+        role = "check" if self.new_is_check.isChecked() else "test"
+        if self.model.add(code, self.new_name.text(), role):
+            self.new_code.clear()
+            self.new_name.clear()
+            self.new_is_check.setChecked(False)
+            self._tell(f"Entry {code.strip()} added.")
+            row = self.model.row_of(code.strip())
+            if row is not None:
+                self.view.scrollTo(self.proxy.mapFromSource(self.model.index(row, 0)))
+        self.new_code.setFocus()
 
     def _counted(self) -> None:
         entries, checks = self.model.counts()

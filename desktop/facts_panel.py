@@ -31,6 +31,7 @@ from PySide6.QtWidgets import (
     QLabel,
     QLineEdit,
     QPlainTextEdit,
+    QPushButton,
     QStyledItemDelegate,
     QStyleOptionViewItem,
     QTableView,
@@ -42,6 +43,7 @@ from PySide6.QtWidgets import (
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.yield_conversion import CROP_DEFAULTS
 from trialdesk.desktop.palette import ERROR_BG
+from trialdesk.desktop.record_table import RecordTableModel
 from trialdesk.desktop.session import TrialSession
 
 __all__ = ["DIRECTIONS", "FactsPanel", "TraitTableModel", "read_number"]
@@ -109,7 +111,7 @@ def read_number(text: str, what: str) -> float | None:
     return value
 
 
-class TraitTableModel(QAbstractTableModel):
+class TraitTableModel(RecordTableModel):
     """The traits: name (fixed), unit, decimals, low, high and direction (edited).
 
     Signals
@@ -117,31 +119,8 @@ class TraitTableModel(QAbstractTableModel):
     edit_refused(str) : an edit was not written, and why.
     """
 
-    edit_refused = Signal(str)
-
     def __init__(self, session: TrialSession, parent: QObject | None = None) -> None:
-        super().__init__(parent)
-        self._session = session
-        self._rows: list[dict] = []
-        self._load()
-        session.opened.connect(self._reset)
-        session.structure_changed.connect(self._refresh)
-
-    def rowCount(self, parent: _Index = QModelIndex()) -> int:  # noqa: B008 (Qt's signature)
-        return 0 if parent.isValid() else len(self._rows)
-
-    def columnCount(self, parent: _Index = QModelIndex()) -> int:  # noqa: B008
-        return 0 if parent.isValid() else len(_COLUMNS)
-
-    def headerData(self, section: int, orientation: Qt.Orientation,
-                   role: int = _Role.DisplayRole) -> object:
-        if orientation != Qt.Orientation.Horizontal or not 0 <= section < len(_COLUMNS):
-            return None
-        if role == _Role.DisplayRole:
-            return _HEADERS[_COLUMNS[section]]
-        if role == _Role.ToolTipRole:
-            return _TIPS.get(_COLUMNS[section])
-        return None
+        super().__init__(session, _COLUMNS, _HEADERS, _TIPS, "name", parent)
 
     def flags(self, index: _Index) -> Qt.ItemFlag:
         if not index.isValid():
@@ -199,12 +178,21 @@ class TraitTableModel(QAbstractTableModel):
         """The trait in a row."""
         return self._rows[row]["name"]
 
-    def _load(self) -> None:
+    def add(self, name: str, unit: str = "", direction: str = DIRECTIONS[0]) -> bool:
+        """Add a new trait (every plot missing); False (with the reason told) if refused."""
+        try:
+            self._session.add_trait(name, unit=unit.strip() or None,
+                                    higher_is_better=direction == DIRECTIONS[0])
+        except TrialInputError as exc:
+            self.edit_refused.emit(f"trait not added: {exc.message}")
+            return False
+        return True
+
+    def load_rows(self) -> list[dict]:
         traits = self._session.traits
         if self._session.trial is None or "name" not in traits.columns:
-            self._rows = []
-            return
-        self._rows = [{
+            return []
+        return [{
             "name": str(t.name), "unit": None if _absent(t.unit) else str(t.unit),
             "decimals": None if _absent(t.decimals) else int(t.decimals),
             "low": None if _absent(t.low) else float(t.low),
@@ -212,21 +200,6 @@ class TraitTableModel(QAbstractTableModel):
             "higher_is_better": bool(t.higher_is_better),
             "derived": isinstance(t.derivation, dict),
         } for t in traits.itertuples(index=False)]
-
-    def _reset(self) -> None:
-        self.beginResetModel()
-        self._load()
-        self.endResetModel()
-
-    def _refresh(self) -> None:
-        names = [row["name"] for row in self._rows]
-        self._load()
-        if [row["name"] for row in self._rows] != names:
-            self.beginResetModel()
-            self.endResetModel()
-        elif self._rows:
-            self.dataChanged.emit(self.index(0, 0),
-                                  self.index(len(self._rows) - 1, len(_COLUMNS) - 1))
 
 
 def _decimals(text: str) -> int | None:
@@ -350,6 +323,26 @@ class FactsPanel(QWidget):
         traits_box = QGroupBox("Traits", self)
         traits_layout = QVBoxLayout(traits_box)
         traits_layout.addWidget(self.traits_view)
+        self.new_trait = QLineEdit(self)
+        self.new_trait.setPlaceholderText("New trait name")
+        self.new_trait.setAccessibleName("New trait name")
+        self.new_unit = QLineEdit(self)
+        self.new_unit.setPlaceholderText("Unit")
+        self.new_unit.setAccessibleName("New trait unit")
+        self.new_direction = QComboBox(self)
+        self.new_direction.addItems(list(DIRECTIONS))
+        self.add_trait_button = QPushButton("Add trait", self)
+        self.add_trait_button.setToolTip("Add a trait to score; it appears as a new column of "
+                                         "the plot data, every plot missing until typed in")
+        adding = QHBoxLayout()
+        adding.addWidget(self.new_trait, 1)
+        adding.addWidget(self.new_unit)
+        adding.addWidget(self.new_direction)
+        adding.addWidget(self.add_trait_button)
+        traits_layout.addLayout(adding)
+        self.add_trait_button.clicked.connect(self._add_trait)
+        self.new_trait.returnPressed.connect(self._add_trait)
+        self.new_unit.returnPressed.connect(self._add_trait)
 
         layout = QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
@@ -439,6 +432,14 @@ class FactsPanel(QWidget):
         for column in range(len(_COLUMNS)):
             self.traits_view.setColumnWidth(column, max(self.traits_view.columnWidth(column),
                                                         least))
+
+    def _add_trait(self) -> None:
+        name = self.new_trait.text().strip()
+        if self.traits_model.add(name, self.new_unit.text(), self.new_direction.currentText()):
+            self.new_trait.clear()
+            self.new_unit.clear()
+            self._tell(f"Trait {name} added: type its values in the plot data.")
+        self.new_trait.setFocus()
 
     # --- writing the facts ---------------------------------------------------------------------
 

@@ -26,6 +26,11 @@ from trialdesk.core.trial_fieldbook import (
 from trialdesk.core.trialfile import TrialFile
 from trialdesk.core.value_checks import Problem, check_plots, check_value
 
+# Names a new trait cannot take: the plot fields shown beside the traits in the grid and in
+# exported field books.
+_PLOT_FIELDS = frozenset({"plot", "block", "entry", "incomplete_block", "row", "column", "name",
+                          "role"})
+
 
 def trait_kinds(traits: pd.DataFrame) -> dict[str, str]:
     """Which traits hold plot weights or moisture readings, read off the derived traits' recipes."""
@@ -79,6 +84,7 @@ class TrialSession(QObject):
         self.results_stale = False
         self.problems: list[Problem] = []
         self.outlier_problems: list[Problem] = []  # the part of problems from the last analysis
+        self._book = None  # the field book of the current data, built when first asked for
 
     # --- opening and closing ------------------------------------------------------------------
 
@@ -115,12 +121,14 @@ class TrialSession(QObject):
         if self.trial is not None:
             self.trial.close()
             self.trial = None
+            self._book = None
             self.results = None
             self.results_stale = False
             self.opened.emit()
 
     def _reload(self) -> None:
         trial = self._require()
+        self._book = None
         self.plots = trial.plots()
         self.traits = trial.traits()
         self.entries = trial.entries()
@@ -225,6 +233,37 @@ class TrialSession(QObject):
         self.structure_changed.emit()
         self.undo_changed.emit(trial.can_undo(), trial.can_redo())
 
+    def add_entry(self, code: str, *, name: str = "", role: str = "test") -> None:
+        """Add a new entry (refused when the code is empty or already listed)."""
+        self._require()
+        code = code.strip()
+        if not code:
+            raise TrialInputError("type the new entry's code first")
+        known = {str(c).casefold(): str(c) for c in self.entries["code"]}
+        if code.casefold() in known:
+            raise TrialInputError(f"the trial already lists entry {known[code.casefold()]}")
+        self.update_entry(code, name=name or None, role=role)
+
+    def add_trait(self, name: str, *, unit: str | None = None,
+                  higher_is_better: bool = True) -> None:
+        """Add a new trait, with every plot's value missing until typed in."""
+        trial = self._require()
+        name = name.strip()
+        if not name:
+            raise TrialInputError("type the new trait's name first")
+        taken = {str(t).casefold(): str(t) for t in self.traits["name"]}
+        taken.update({field: field for field in _PLOT_FIELDS})
+        if name.casefold() in taken:
+            what = "a plot field" if name.casefold() in _PLOT_FIELDS else "a trait"
+            raise TrialInputError(f"'{taken[name.casefold()]}' is already {what} of this trial")
+        trial.upsert_trait(name, unit=unit or None, higher_is_better=higher_is_better)
+        self.traits = trial.traits()
+        self.values = trial_values(trial)
+        self._mark_stale()
+        self._recheck()
+        self.structure_changed.emit()
+        self.undo_changed.emit(trial.can_undo(), trial.can_redo())
+
     def update_trait(self, name: str, **fields) -> None:
         """Change a trait's unit, decimals, range or direction."""
         trial = self._require()
@@ -249,17 +288,31 @@ class TrialSession(QObject):
         self.undo_changed.emit(trial.can_undo(), trial.can_redo())  # settings are undoable
 
     def fieldbook(self):
-        """The plot data as a field book for trialdesk.core.analysis."""
-        return fieldbook_from_trial(self._require())
+        """The plot data as a field book for trialdesk.core.analysis (kept until the next edit;
+        the analysis only reads it, so the worker thread and the views share one)."""
+        if self._book is None:
+            self._book = fieldbook_from_trial(self._require())
+        return self._book
 
     def set_results(self, results: TrialAnalysis | None) -> None:
-        """New results from an analysis run; they are current until the data change."""
+        """New results from an analysis run.
+
+        They are current until the data change, and out of date at once when the data they
+        were computed from (their checksum) are not the data now in the trial: an edit made
+        while the analysis ran.
+        """
         self.results = results
-        self.results_stale = False
-        self._recheck()
+        self.results_stale = (results is not None and self.trial is not None
+                              and results.sha256 != self.fieldbook().sha256)
+        # Only the outlier part of the problem list depends on results: the input checks stand.
+        dropped = set(map(id, self.outlier_problems))
+        self.outlier_problems = self._outlier_problems()
+        self.problems = [p for p in self.problems if id(p) not in dropped] + self.outlier_problems
+        self.problems_changed.emit()
         self.results_changed.emit()
 
     def _mark_stale(self) -> None:
+        self._book = None  # every edit goes through here: the data are no longer the book's
         if self.results is not None and not self.results_stale:
             self.results_stale = True
             self.results_changed.emit()

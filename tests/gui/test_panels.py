@@ -236,3 +236,48 @@ def test_harvested_area_recomputes_derived_yield(invented, qtbot):
     assert invented.trial.facts()["harvested_area_m2"] == 12.0
     assert cell.data(ROLE.UserRole) == pytest.approx(before / 2, rel=1e-12)  # twice the area,
     # half the yield per hectare; rel=1e-12 allows only float rounding
+
+
+def test_an_entry_is_added_and_a_repeated_code_refused(session, qtbot):
+    panel = shown(EntriesPanel(session), qtbot, 560, 520)
+    qtbot.keyClicks(panel.new_code, "TC26-150")
+    qtbot.keyClicks(panel.new_name, "Reserve line")
+    panel.new_is_check.setChecked(True)
+    qtbot.mouseClick(panel.add_button, Qt.MouseButton.LeftButton)
+    entries = session.trial.entries().set_index("code")
+    assert (entries.at["TC26-150", "name"], entries.at["TC26-150", "role"]) == (
+        "Reserve line", "check")
+    assert panel.count.text() == "26 entries, 3 checks"
+    assert panel.new_code.text() == "" and "added" in panel.message.text()
+    assert panel.model.row_of("TC26-150") == 25  # new entries go last
+    qtbot.keyClicks(panel.new_code, "tc26-101")  # the same code in other letter case
+    qtbot.keyClick(panel.new_code, Qt.Key.Key_Return)
+    assert "already lists entry TC26-101" in panel.message.text()
+    assert panel.new_code.text() == "tc26-101"  # what was typed stays, to be corrected
+    assert len(session.trial.entries()) == 26
+    session.undo()
+    assert panel.count.text() == "25 entries, 2 checks"
+
+
+def test_a_trait_is_added_as_a_new_column_of_missing_values(session, qtbot):
+    panel = shown(FactsPanel(session), qtbot)
+    grid = PlotGrid(session)
+    qtbot.addWidget(grid)
+    qtbot.keyClicks(panel.new_trait, "lodging_score")
+    qtbot.keyClicks(panel.new_unit, "1-9")
+    panel.new_direction.setCurrentText("lower is better")
+    qtbot.mouseClick(panel.add_trait_button, Qt.MouseButton.LeftButton)
+    traits = session.trial.traits().set_index("name")
+    assert traits.at["lodging_score", "unit"] == "1-9"
+    assert not traits.at["lodging_score", "higher_is_better"]
+    assert "lodging_score" in session.settings().lower_is_better
+    column = grid.model.trait_column("lodging_score")
+    assert grid.model.headerData(column, Qt.Orientation.Horizontal).startswith("lodging_score")
+    assert grid.model.index(0, column).data() == ""
+    session.set_value("101", "lodging_score", 3.0)
+    assert session.trial.values().at["101", "lodging_score"] == 3.0
+    for name, words in (("plot", "a plot field"), ("Grain_Yield", "a trait"), ("  ", "name")):
+        panel.new_trait.setText(name)
+        qtbot.keyClick(panel.new_trait, Qt.Key.Key_Return)
+        assert words in panel.message.text()
+    assert len(session.trial.traits()) == len(traits)
