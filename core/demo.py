@@ -23,6 +23,21 @@ DEMO_SETTINGS = AnalysisSettings(
 )
 
 
+#: The demo trial's facts (invented), as the demo trial file holds them.
+DEMO_FACTS = {"name": "Tallow Creek AYT 2026", "station": "Tallow Creek Field Station",
+              "season": "2026 main", "crop": "wheat", "design": "rcbd",
+              "plot_length_m": 5.0, "plot_width_m": 1.5, "harvested_area_m2": 6.0,
+              "standard_moisture_pct": 13.5}
+
+#: Units and plausible ranges of the demo traits.
+DEMO_TRAITS = {
+    "grain_yield": {"unit": "t/ha", "low": 1.0, "high": 12.0},
+    "heading_days": {"unit": "days", "low": 40, "high": 90},
+    "plant_height": {"unit": "cm", "low": 40, "high": 150},
+    "test_weight": {"unit": "kg/hl", "low": 60, "high": 88},
+}
+
+
 def demo_fieldbook_path() -> Path:
     """Path of the demo field book (a CSV file installed with the package)."""
     resource = files("trialdesk.resources") / "demo_trial.csv"
