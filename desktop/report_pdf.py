@@ -1,0 +1,1127 @@
+"""The printed trial report: one drawing routine for paper and PDF.
+
+:func:`render_report` lays a :class:`~trialdesk.core.report.TrialReport` out on the pages of any
+paged device (a QPdfWriter, or the QPrinter of the print dialog) with QPainter, so that print and
+PDF are one and the same; :func:`write_pdf` makes a PDF file of it, with or without a display.
+
+Top to bottom: the trial's name and its facts in three or four columns; the all-traits table
+(entries in rank order of the main trait; per trait the mean, grouping letters and marks against
+the checks; percent of the checks), with the grand mean, CV%, critical difference and entry F-test
+under it; a ranked-means chart of the main trait; the footnotes; the cautions in a box. A footer on
+every page names the trial, the page, the analysis date and the Trialdesk version.
+
+The page turns landscape when the table is too wide for a portrait page, and the text size (8.5
+down to 7 pt for the table) is the largest that keeps the report on one page; a trial too long
+for one page is set in 8 pt and flows on to further pages, each with the trial's name, its facts
+and the table's heading repeated. What does not fit beside or below the table moves to the last
+page. The text is real text, so it can be searched and copied from the PDF.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import sys
+import tempfile
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from PySide6.QtCore import QMarginsF, QPointF, QRectF, Qt
+from PySide6.QtGui import (
+    QColor,
+    QFont,
+    QFontMetricsF,
+    QGuiApplication,
+    QPagedPaintDevice,
+    QPageLayout,
+    QPageSize,
+    QPainter,
+    QPdfWriter,
+    QPen,
+    QPolygonF,
+    QTextLayout,
+    QTextOption,
+)
+
+from trialdesk.core.errors import TrialInputError
+from trialdesk.core.report import ReportColumn, ReportRow, TrialReport
+from trialdesk.core.version import VERSION
+from trialdesk.desktop.palette import (
+    ABOVE,
+    ABOVE_MARK,
+    ACCENT,
+    BELOW,
+    BELOW_MARK,
+    CHECK_BG,
+    CHECK_PEN,
+    ENTRY_PEN,
+)
+
+__all__ = ["PAPERS", "render_report", "write_pdf"]
+
+PAPERS = {"A4": QPageSize.PageSizeId.A4, "Letter": QPageSize.PageSizeId.Letter}
+
+MARGIN_MM = 12.0
+TABLE_SIZES = (8.5, 8.0, 7.5, 7.0)  # table text in points, largest first
+PORTRAIT_SIZE = 7.5  # a table that does not fit a portrait page at this size turns the page
+FLOW_SIZE = 8.0  # table text of a report that needs more than one page anyway
+GAP_MM = 4.0  # between the blocks of a page
+SIDE_MM = 70.0  # the narrowest room beside the table that takes the chart and the notes
+WIDE_CHART_MM = 120.0  # from this width the chart runs the entries across, else down
+NAME_MM = 45.0  # the widest an entry's name is printed (longer names are cut short with "…")
+LABEL_MM = 22.0  # the longest entry code printed on the chart
+FOOTER_MM = 7.0
+
+BLACK = QColor("black")
+PAPER = QColor("white")
+TEXT_FLAGS = Qt.AlignmentFlag.AlignLeft | Qt.AlignmentFlag.AlignVCenter
+RIGHT_FLAGS = Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter
+CENTRE_FLAGS = Qt.AlignmentFlag.AlignHCenter | Qt.AlignmentFlag.AlignVCenter
+BOTTOM_LABELS = ("Grand mean", "CV %", "Critical difference", "Entry F-test p")
+CHECK_KEY = "Shaded rows are the checks."
+
+_HEX_RUN = re.compile(r"\b([0-9a-fA-F]{12})[0-9a-fA-F]{20,}\b")
+
+Draw = Callable[[QPainter], None]
+
+_app: QGuiApplication | None = None  # the application write_pdf made, kept alive
+
+
+# --- small helpers ------------------------------------------------------------------------------
+
+
+def _finite(value: float | None) -> bool:
+    return value is not None and math.isfinite(value)
+
+
+def _fixed(value: float | None, decimals: int) -> str:
+    """``value`` with ``decimals`` places, or an en dash when there is none."""
+    return f"{value:.{decimals}f}" if _finite(value) else "\u2013"
+
+
+def _p_text(p: float | None) -> str:
+    """A p-value with four places, "<0.0001" below that."""
+    if not _finite(p):
+        return "\u2013"
+    return "<0.0001" if p < 0.0001 else f"{p:.4f}"
+
+
+def _short(value: str) -> str:
+    """A long hexadecimal checksum cut to its first 12 digits (enough to tell files apart)."""
+    return _HEX_RUN.sub(lambda match: f"{match.group(1)}\u2026", value)
+
+
+def _faded(color: QColor, alpha: int) -> QColor:
+    faded = QColor(color)
+    faded.setAlpha(alpha)
+    return faded
+
+
+class _Style:
+    """Fonts, their measures and lengths on one device, for one size of table text."""
+
+    def __init__(self, device: QPagedPaintDevice, size: float) -> None:
+        self.device = device
+        self.dpi = device.logicalDpiY()
+        self.size = size
+        self.text = self.font(size)
+        self.bold = self.font(size, bold=True)
+        self.small = self.font(size - 1.0)
+        self.note = self.font(max(6.5, size - 1.0))
+        self.note_bold = self.font(max(6.5, size - 1.0), bold=True)
+        self.title = self.font(14.0, bold=True)
+        self.running = self.font(10.0, bold=True)
+        self.footer = self.font(6.5)
+
+    def font(self, points: float, *, bold: bool = False) -> QFont:
+        """The application's sans-serif face at ``points``."""
+        font = QFont(QGuiApplication.font())
+        font.setStyleHint(QFont.StyleHint.SansSerif)
+        font.setPointSizeF(points)
+        font.setBold(bold)
+        # No ligatures: "ff" and "fi" set as one glyph would not be found by a search of the PDF.
+        for tag in ("liga", "clig"):
+            font.setFeature(QFont.Tag.fromString(tag), 0)
+        return font
+
+    def mm(self, length: float) -> float:
+        """``length`` millimetres in device pixels."""
+        return length * self.dpi / 25.4
+
+    def pt(self, length: float) -> float:
+        """``length`` points in device pixels."""
+        return length * self.dpi / 72.0
+
+    def metrics(self, font: QFont) -> QFontMetricsF:
+        return QFontMetricsF(font, self.device)
+
+    def width(self, font: QFont, text: str) -> float:
+        return self.metrics(font).horizontalAdvance(text)
+
+    def widest(self, font: QFont, texts: Sequence[str]) -> float:
+        metrics = self.metrics(font)
+        return max((metrics.horizontalAdvance(t) for t in texts), default=0.0)
+
+    def line(self, font: QFont) -> float:
+        return self.metrics(font).lineSpacing()
+
+    def elide(self, font: QFont, text: str, width: float) -> str:
+        return self.metrics(font).elidedText(text, Qt.TextElideMode.ElideRight, width)
+
+    def wrap(self, font: QFont, text: str, width: float, *, anywhere: bool = True) -> list[str]:
+        """``text`` broken into lines no wider than ``width`` (at spaces; inside a word only when
+        ``anywhere`` and the word is longer than a line)."""
+        layout = QTextLayout(text, font, self.device)
+        option = QTextOption()
+        option.setWrapMode(QTextOption.WrapMode.WrapAtWordBoundaryOrAnywhere if anywhere
+                           else QTextOption.WrapMode.WordWrap)
+        layout.setTextOption(option)
+        lines = []
+        layout.beginLayout()
+        while (line := layout.createLine()).isValid():
+            line.setLineWidth(width)
+            start = line.textStart()
+            lines.append(text[start:start + line.textLength()].strip())
+        layout.endLayout()
+        return lines or [""]
+
+    def pen(self, color: QColor, points: float,
+            style: Qt.PenStyle = Qt.PenStyle.SolidLine) -> QPen:
+        pen = QPen(color)
+        pen.setWidthF(self.pt(points))
+        pen.setStyle(style)
+        pen.setCapStyle(Qt.PenCapStyle.FlatCap)
+        return pen
+
+    def draw_text(self, painter: QPainter, font: QFont, rect: QRectF, text: str,
+                  flags: Qt.AlignmentFlag = TEXT_FLAGS, color: QColor = BLACK) -> None:
+        painter.setFont(font)
+        painter.setPen(color)
+        painter.drawText(rect, flags, text)
+
+    def draw_lines(self, painter: QPainter, font: QFont, x: float, y: float, width: float,
+                   lines: Sequence[str], color: QColor = BLACK) -> float:
+        """Draw ``lines`` one under another from ``y``; return the y below the last."""
+        step = self.line(font)
+        for text in lines:
+            self.draw_text(painter, font, QRectF(x, y, width, step), text, color=color)
+            y += step
+        return y
+
+    def rule(self, painter: QPainter, x0: float, x1: float, y: float, color: QColor = ACCENT,
+             points: float = 0.5) -> None:
+        painter.setPen(self.pen(color, points))
+        painter.drawLine(QPointF(x0, y), QPointF(x1, y))
+
+
+# --- the blocks of a page ------------------------------------------------------------------------
+
+
+class _Header:
+    """The trial's name and its facts (label and value pairs, column by column)."""
+
+    def __init__(self, report: TrialReport, style: _Style, width: float) -> None:
+        s = self.style = style
+        self.report = report
+        self.width = width
+        self.gap = s.mm(5)
+        pairs = [(label, _short(value)) for label, value in report.header
+                 if value != report.title]  # the name is the title already
+        # As many columns as give the fewest lines (long values wrap within their column).
+        grids = [self._grid(pairs, n) for n in (3, 4, 2) if n <= max(len(pairs), 1)]
+        self.columns, self.row_heights = min(grids, key=lambda grid: sum(grid[1]))
+        self.title_h = s.line(s.title)
+        self.height = (self.title_h + s.mm(1.5) + sum(self.row_heights) + s.mm(2.0)
+                       + s.mm(GAP_MM))
+
+    def _grid(self, pairs: list[tuple[str, str]], n_columns: int) -> tuple[list, list[float]]:
+        """The pairs set down ``n_columns`` columns: each column's (x, label width, value width,
+        cells of (label, value lines)), and the height of each row."""
+        s = self.style
+        n_rows = max(1, math.ceil(len(pairs) / n_columns))
+        columns = [pairs[k:k + n_rows] for k in range(0, len(pairs), n_rows)] or [[]]
+        label_w = [s.widest(s.note_bold, [p[0] for p in c]) + s.mm(1.5) for c in columns]
+        value_w = _share([s.widest(s.note, [p[1] for p in c]) for c in columns],
+                         self.width - self.gap * (len(columns) - 1) - sum(label_w))
+        grid = []
+        x = 0.0
+        for column, lw, vw in zip(columns, label_w, value_w, strict=True):
+            grid.append((x, lw, vw, [(label, s.wrap(s.note, value, vw))
+                                     for label, value in column]))
+            x += lw + vw + self.gap
+        step = s.line(s.note)
+        heights = [max((len(c[3][r][1]) for c in grid if r < len(c[3])), default=0) * step
+                   for r in range(n_rows)]
+        return grid, heights
+
+    def draw(self, painter: QPainter) -> None:
+        s = self.style
+        s.draw_text(painter, s.title, QRectF(0, 0, self.width, self.title_h),
+                    s.elide(s.title, self.report.title, self.width))
+        top = self.title_h + s.mm(1.5)
+        for x, label_w, value_w, cells in self.columns:
+            y = top
+            for (label, lines), height in zip(cells, self.row_heights, strict=False):
+                s.draw_text(painter, s.note_bold, QRectF(x, y, label_w, s.line(s.note)), label,
+                            color=ACCENT)
+                s.draw_lines(painter, s.note, x + label_w, y, value_w, lines)
+                y += height
+        s.rule(painter, 0, self.width, top + sum(self.row_heights) + s.mm(1.0), points=0.8)
+
+
+class _RunningHead:
+    """The head of every page after the first: the trial's name and its facts on one line."""
+
+    def __init__(self, report: TrialReport, style: _Style, width: float) -> None:
+        s = self.style = style
+        self.width = width
+        self.title = s.elide(s.running, report.title, width)
+        facts = "  \u00b7  ".join(f"{label} {_short(value)}" for label, value in report.header
+                                  if value != report.title)
+        self.facts = s.elide(s.note, facts, width)
+        self.height = s.line(s.running) + s.line(s.note) + s.mm(1.0) + s.mm(GAP_MM)
+
+    def draw(self, painter: QPainter) -> None:
+        s = self.style
+        s.draw_text(painter, s.running, QRectF(0, 0, self.width, s.line(s.running)), self.title)
+        y = s.line(s.running)
+        s.draw_text(painter, s.note, QRectF(0, y, self.width, s.line(s.note)), self.facts)
+        s.rule(painter, 0, self.width, y + s.line(s.note) + s.mm(0.8), points=0.8)
+
+
+class _Footer:
+    """The line at the foot of every page: trial, page n of N, analysis date, software."""
+
+    def __init__(self, report: TrialReport, style: _Style, width: float, height: float) -> None:
+        self.style = style
+        self.width = width
+        self.top = height - style.mm(FOOTER_MM)
+        self.title = style.elide(style.footer, report.title, width * 0.4)
+        analysed = dict(report.header).get("Analysed on", "")
+        self.right = "  \u00b7  ".join(
+            ([f"Analysed on {analysed}"] if analysed else []) + [f"Trialdesk {VERSION}"])
+
+    def draw(self, painter: QPainter, number: int, count: int) -> None:
+        s = self.style
+        y = self.top + s.mm(2.5)
+        s.rule(painter, 0, self.width, y, points=0.4)
+        box = QRectF(0, y + s.mm(0.8), self.width, s.line(s.footer))
+        s.draw_text(painter, s.footer, box, self.title)
+        s.draw_text(painter, s.footer, box, f"Page {number} of {count}", CENTRE_FLAGS)
+        s.draw_text(painter, s.footer, box, self.right, RIGHT_FLAGS)
+
+
+@dataclass
+class _Group:
+    """One trait's columns in the table: mean, grouping letters, marks against the checks."""
+
+    column: ReportColumn
+    index: int
+    left: float
+    mean_w: float
+    letters_w: float
+    mark_w: float
+    width: float
+    title: list[str]
+    name_inline: bool  # the critical difference's name fits beside its number
+
+
+class _Table:
+    """The all-traits table: its heading, the entry rows and the statistics under them."""
+
+    def __init__(self, report: TrialReport, style: _Style) -> None:
+        s = self.style = style
+        self.report = report
+        pad = self.pad = s.mm(0.8)
+        rows = report.rows
+        self.row_h = s.line(s.text) + s.mm(0.6)
+        self.rank_w = max(s.width(s.bold, "Rank"),
+                          s.widest(s.text, [str(r.rank) for r in rows])) + 2 * pad
+        entry_w = max(s.width(s.bold, "Entry"), s.widest(s.text, [r.entry for r in rows]))
+        self.entry_w = entry_w + 2 * pad
+        self.has_names = any(r.name for r in rows)
+        self.name_w = 0.0
+        if self.has_names:
+            names = max(s.width(s.bold, "Name"), s.widest(s.text, [r.name for r in rows]))
+            self.name_w = min(names, s.mm(NAME_MM)) + 2 * pad
+        labels = s.widest(s.text, BOTTOM_LABELS) + 2 * pad
+        self.entry_w += max(0.0, labels - (self.rank_w + self.entry_w + self.name_w))
+        x = self.rank_w + self.entry_w + self.name_w
+        self.groups = []
+        for index, column in enumerate(report.columns):
+            group = self._group(column, index, x)
+            self.groups.append(group)
+            x += group.width
+        self.percent_left = x
+        self.has_percent = any(r.percent_of_check is not None for r in rows)
+        self.percent_w = 0.0
+        self.percent_title = ["% of checks"]
+        if self.has_percent:
+            numbers = s.widest(s.text, [_fixed(r.percent_of_check, 1) for r in rows])
+            if s.width(s.bold, self.percent_title[0]) > numbers:
+                self.percent_title = ["% of", "checks"]  # on two lines, as narrow as the numbers
+            self.percent_w = max(numbers, s.widest(s.bold, self.percent_title)) + 2 * pad
+        self.width = x + self.percent_w
+        self.title_lines = max([len(g.title) for g in self.groups]
+                               + [len(self.percent_title) - 1 if self.has_percent else 1, 1])
+        self.head_h = (pad + self.title_lines * s.line(s.bold) + s.mm(0.7) + s.line(s.small)
+                       + pad)
+        self.has_checks = any(r.is_check for r in rows)
+        # The critical differences' names beside the numbers when every one fits, else under.
+        self.name_below = not all(g.name_inline for g in self.groups)
+        self.bottom_h = (len(BOTTOM_LABELS) * self.row_h + s.mm(0.6)
+                         + (s.line(s.small) if self.name_below else 0.0)
+                         + (s.line(s.small) + s.mm(0.6) if self.has_checks else 0.0))
+
+    def _group(self, column: ReportColumn, index: int, left: float) -> _Group:
+        s, pad = self.style, self.pad
+        d = column.decimals
+        numbers = [_fixed(r.means[index], d) for r in self.report.rows] + [
+            _fixed(column.grand_mean, d), _fixed(column.cv_percent, 1),
+            _fixed(column.critical_difference, d), _p_text(column.entry_p)]
+        mean_w = max(s.widest(s.text, numbers), s.width(s.small, "mean"))
+        letters_w = 0.0
+        if column.has_letters:
+            letters_w = max(s.widest(s.text, [r.letters[index] for r in self.report.rows]),
+                            s.width(s.small, "letters"))
+        mark_w = s.widest(s.text, [r.marks[index] for r in self.report.rows])
+        content = (2 * pad + mean_w + (0.8 * pad + letters_w if letters_w else 0.0)
+                   + (0.8 * pad + mark_w if mark_w else 0.0))
+        # The trait on the first line, its unit and direction under it when they do not fit.
+        rest = column.title[len(column.trait):].strip()
+        words = max(s.widest(s.bold, column.title.split()), s.widest(s.bold, [column.trait]))
+        width = max(content, s.width(s.small, column.critical_name) + 2 * pad, words + 2 * pad)
+        if s.width(s.bold, column.title) + 2 * pad <= width:
+            title = [column.title]
+        else:
+            width = max(width, min(s.width(s.bold, rest), 1.5 * content) + 2 * pad)
+            title = [column.trait, *s.wrap(s.bold, rest, width - 2 * pad, anywhere=False)]
+        mean_w += width - content
+        beside = width - 2.8 * pad - mean_w  # the room right of the numbers
+        return _Group(column=column, index=index, left=left, mean_w=mean_w,
+                      letters_w=letters_w, mark_w=mark_w, width=width, title=title,
+                      name_inline=s.width(s.small, column.critical_name) <= beside)
+
+    # Each part of the table is drawn with its top at ``y`` and its left edge at 0.
+
+    def _separators(self, painter: QPainter, top: float, bottom: float) -> None:
+        painter.setPen(self.style.pen(_faded(ACCENT, 70), 0.3))
+        for x in [g.left for g in self.groups] + ([self.percent_left] if self.has_percent else []):
+            painter.drawLine(QPointF(x, top), QPointF(x, bottom))
+
+    def draw_head(self, painter: QPainter, y: float) -> None:
+        s, pad = self.style, self.pad
+        bold_h = s.line(s.bold)
+        s.rule(painter, 0, self.width, y, points=0.8)
+        below_titles = y + pad + self.title_lines * bold_h
+        for group in self.groups:
+            line_y = below_titles - len(group.title) * bold_h
+            for text in group.title:
+                s.draw_text(painter, s.bold, QRectF(group.left, line_y, group.width, bold_h),
+                            text, CENTRE_FLAGS)
+                line_y += bold_h
+            s.rule(painter, group.left + pad, group.left + group.width - pad,
+                   below_titles + s.mm(0.3), points=0.35)
+            sub = QRectF(group.left + pad, below_titles + s.mm(0.7), group.mean_w,
+                         s.line(s.small))
+            s.draw_text(painter, s.small, sub, "mean", RIGHT_FLAGS)
+            if group.letters_w:
+                sub.moveLeft(group.left + pad + group.mean_w + 0.8 * pad)
+                sub.setWidth(group.letters_w)
+                s.draw_text(painter, s.small, sub, "letters")
+        base = QRectF(0, y + self.head_h - pad - bold_h, 0, bold_h)
+        plain = [(0.0, self.rank_w, "Rank", RIGHT_FLAGS),
+                 (self.rank_w, self.entry_w, "Entry", TEXT_FLAGS)]
+        if self.has_names:
+            plain.append((self.rank_w + self.entry_w, self.name_w, "Name", TEXT_FLAGS))
+        for left, width, text, flags in plain:
+            s.draw_text(painter, s.bold, base.adjusted(left + pad, 0, left + width - pad, 0),
+                        text, flags)
+        if self.has_percent:  # its last line level with the other headings
+            box = base.adjusted(self.percent_left + pad, 0, self.percent_left + self.percent_w
+                                - pad, 0)
+            box.translate(0, -(len(self.percent_title) - 1) * bold_h)
+            for text in self.percent_title:
+                s.draw_text(painter, s.bold, box, text, RIGHT_FLAGS)
+                box.translate(0, bold_h)
+        self._separators(painter, y + pad, y + self.head_h)
+        s.rule(painter, 0, self.width, y + self.head_h, points=0.5)
+
+    def draw_rows(self, painter: QPainter, y: float, rows: Sequence[ReportRow],
+                  first: int) -> None:
+        """Draw ``rows``, the first of which is row ``first`` (from 0) of the whole table."""
+        s, pad, h = self.style, self.pad, self.row_h
+        top = y
+        for k, row in enumerate(rows):
+            if row.is_check:
+                painter.fillRect(QRectF(0, y, self.width, h), CHECK_BG)
+            cell = QRectF(pad, y, self.rank_w - 2 * pad, h)
+            s.draw_text(painter, s.text, cell, str(row.rank), RIGHT_FLAGS)
+            cell = QRectF(self.rank_w + pad, y, self.entry_w - 2 * pad, h)
+            s.draw_text(painter, s.text, cell, row.entry)
+            if self.has_names:
+                cell = QRectF(self.rank_w + self.entry_w + pad, y, self.name_w - 2 * pad, h)
+                s.draw_text(painter, s.text, cell, s.elide(s.text, row.name, cell.width()))
+            for group in self.groups:
+                self._draw_trait(painter, group, row, y)
+            if self.has_percent:
+                cell = QRectF(self.percent_left + pad, y, self.percent_w - 2 * pad, h)
+                s.draw_text(painter, s.text, cell, _fixed(row.percent_of_check, 1), RIGHT_FLAGS)
+            y += h
+            if (first + k + 1) % 5 == 0 and k + 1 < len(rows):
+                s.rule(painter, 0, self.width, y, _faded(ACCENT, 90), points=0.3)
+        self._separators(painter, top, y)
+
+    def _draw_trait(self, painter: QPainter, group: _Group, row: ReportRow, y: float) -> None:
+        s, pad, h = self.style, self.pad, self.row_h
+        j = group.index
+        x = group.left + pad
+        s.draw_text(painter, s.text, QRectF(x, y, group.mean_w, h),
+                    _fixed(row.means[j], group.column.decimals), RIGHT_FLAGS)
+        x += group.mean_w + 0.8 * pad
+        if group.letters_w:
+            s.draw_text(painter, s.text, QRectF(x, y, group.letters_w, h), row.letters[j])
+            x += group.letters_w + 0.8 * pad
+        for mark in row.marks[j]:
+            color = ABOVE if mark == ABOVE_MARK else BELOW if mark == BELOW_MARK else BLACK
+            s.draw_text(painter, s.text, QRectF(x, y, group.mark_w, h), mark, color=color)
+            x += s.width(s.text, mark)
+
+    def draw_bottom(self, painter: QPainter, y: float) -> None:
+        s, pad, h = self.style, self.pad, self.row_h
+        label_w = self.rank_w + self.entry_w + self.name_w - 2 * pad
+        s.rule(painter, 0, self.width, y, points=0.5)
+        top = y
+        small_h = s.line(s.small)
+        for label in BOTTOM_LABELS:
+            s.draw_text(painter, s.text, QRectF(pad, y, label_w, h), label)
+            for group in self.groups:
+                column, d = group.column, group.column.decimals
+                number = {"Grand mean": _fixed(column.grand_mean, d),
+                          "CV %": _fixed(column.cv_percent, 1),
+                          "Critical difference": _fixed(column.critical_difference, d),
+                          "Entry F-test p": _p_text(column.entry_p)}[label]
+                s.draw_text(painter, s.text, QRectF(group.left + pad, y, group.mean_w, h),
+                            number, RIGHT_FLAGS)
+                if label == "Critical difference" and not self.name_below:
+                    x = group.left + 1.8 * pad + group.mean_w
+                    s.draw_text(painter, s.small, QRectF(x, y, group.left + group.width - x, h),
+                                column.critical_name)
+                elif label == "Critical difference":
+                    s.draw_text(painter, s.small, QRectF(group.left, y + h - s.mm(0.4),
+                                                         group.width, small_h),
+                                column.critical_name, CENTRE_FLAGS)
+            y += h + (small_h if label == "Critical difference" and self.name_below else 0.0)
+        self._separators(painter, top, y)
+        s.rule(painter, 0, self.width, y, points=0.8)
+        if self.has_checks:
+            key = QRectF(0, y + s.mm(0.6), self.width, small_h)
+            painter.fillRect(QRectF(pad, key.top() + small_h * 0.2, small_h * 1.2, small_h * 0.6),
+                             CHECK_BG)
+            s.draw_text(painter, s.small, key.adjusted(pad + small_h * 1.6, 0, 0, 0), CHECK_KEY)
+
+
+class _Chart:
+    """The ranked-means chart of the main trait: one point per entry, best first, with a bar of
+    half the critical difference either side and the grand mean across."""
+
+    def __init__(self, report: TrialReport, style: _Style) -> None:
+        s = self.style = style
+        index = next((j for j, c in enumerate(report.columns) if c.trait == report.main_trait), 0)
+        column = self.column = report.columns[index]
+        d = column.decimals
+        self.points = [(r.entry, r.is_check, r.means[index]) for r in report.rows
+                       if _finite(r.means[index])]
+        cd = column.critical_difference
+        self.half = cd / 2 if _finite(cd) and cd > 0 else 0.0
+        self.title = f"Ranked means of {column.title}"
+        self.legend = [("dot", ENTRY_PEN, "entry")]
+        if any(p[1] for p in self.points):
+            self.legend.append(("diamond", CHECK_PEN, "check"))
+        self.legend.append(("dash", ACCENT, f"grand mean {_fixed(column.grand_mean, d)}"))
+        self.caption = "Entries in rank order, best first."
+        if self.half:
+            self.legend.append(("bar", ENTRY_PEN, f"mean \u00b1 half the {column.critical_name}"))
+            # Dunnett's difference holds for comparisons with a check only.
+            pair = ("an entry's bar does not overlap a check's, the two"
+                    if report.analysis.settings.method == "dunnett"
+                    else "two bars do not overlap, the means")
+            self.caption += (f" Where {pair} differ by more than the {column.critical_name} "
+                             f"({_fixed(cd, d)}).")
+        values = [m + sign * self.half for _, _, m in self.points for sign in (-1, 1)]
+        values += [column.grand_mean] if _finite(column.grand_mean) else []
+        self.ticks, self.tick_decimals = _ticks(min(values, default=0.0),
+                                                max(values, default=0.0))
+        self.tick_texts = [f"{t:.{self.tick_decimals}f}" for t in self.ticks]
+        self.label_w = min(s.widest(s.small, [p[0] for p in self.points]), s.mm(LABEL_MM))
+
+    def _legend_lines(self, width: float) -> list[list[tuple[float, tuple]]]:
+        """The legend's items flowed into lines: (x, item) pairs."""
+        lines: list[list[tuple[float, tuple]]] = [[]]
+        x = 0.0
+        for item in self.legend:
+            w = self._item_w(item)
+            if lines[-1] and x + w > width:
+                lines.append([])
+                x = 0.0
+            lines[-1].append((x, item))
+            x += w + self.style.mm(4.0)
+        return lines
+
+    def _item_w(self, item: tuple) -> float:
+        return self.style.mm(5.0) + self.style.width(self.style.small, item[2])
+
+    def _head(self, width: float) -> tuple[list[str], list[list[tuple[float, tuple]]],
+                                           list[str], bool]:
+        """The title's lines, the legend's lines, the caption's lines, and whether the legend
+        shares the title's line."""
+        s = self.style
+        title = s.wrap(s.note_bold, self.title, width)
+        caption = s.wrap(s.small, self.caption, width)
+        shift = s.width(s.note_bold, title[0]) + s.mm(6.0)
+        legend = self._legend_lines(float("inf"))
+        x, item = legend[0][-1]
+        if len(title) == 1 and shift + x + self._item_w(item) <= width:
+            return title, [[(x + shift, item) for x, item in legend[0]]], caption, True
+        return title, self._legend_lines(width), caption, False
+
+    def _head_h(self, width: float) -> float:
+        s = self.style
+        title, legend, caption, inline = self._head(width)
+        lines = len(caption) + (0 if inline else len(legend))
+        return len(title) * s.line(s.note_bold) + lines * s.line(s.small) + s.mm(1.5)
+
+    def heights(self, width: float, *, own_page: bool = False) -> tuple[float, float]:
+        """The least and the preferred height of the chart drawn ``width`` wide (taller on a
+        page after the table's, where there is room for it)."""
+        s = self.style
+        head = self._head_h(width)
+        small = s.line(s.small)
+        if width >= s.mm(WIDE_CHART_MM):
+            axis = small / 2 + self.label_w + s.mm(1.5)
+            return head + axis + s.mm(24), head + axis + s.mm(90 if own_page else 42)
+        axis = small + s.mm(1.5)
+        n = max(len(self.points), 4)  # at least: every entry named
+        return head + axis + n * small * 1.05, head + axis + n * small * 1.4
+
+    def draw(self, painter: QPainter, rect: QRectF) -> None:
+        s = self.style
+        width = rect.width()
+        title, legend, caption, inline = self._head(width)
+        y = s.draw_lines(painter, s.note_bold, rect.left(), rect.top(), width, title)
+        if inline:  # on the title's baseline
+            y = rect.top() + s.metrics(s.note_bold).ascent() - s.metrics(s.small).ascent()
+        for line in legend:
+            for x, item in line:
+                self._legend_item(painter, rect.left() + x, y, item)
+            y += s.line(s.small)
+        if inline:
+            y = rect.top() + len(title) * s.line(s.note_bold)
+        y = s.draw_lines(painter, s.small, rect.left(), y, width, caption) + s.mm(1.5)
+        across = width >= s.mm(WIDE_CHART_MM)
+        small = s.line(s.small)
+        tick_w = s.widest(s.small, self.tick_texts)
+        if across:
+            plot = QRectF(rect.left() + tick_w + s.mm(1.5), y + small / 2,
+                          width - tick_w - s.mm(2.5), 0)
+            plot.setBottom(rect.bottom() - self.label_w - s.mm(1.5))
+        else:
+            left = rect.left() + self.label_w + s.mm(1.5)
+            plot = QRectF(left, y, rect.right() - tick_w / 2 - left, 0)
+            plot.setBottom(rect.bottom() - small - s.mm(1.0))
+        self._plot(painter, plot, across)
+
+    def _legend_item(self, painter: QPainter, x: float, y: float, item: tuple) -> None:
+        s = self.style
+        kind, color, text = item
+        h = s.line(s.small)
+        middle = QPointF(x + s.mm(2.0), y + h / 2)
+        if kind == "dash":
+            painter.setPen(s.pen(color, 0.8, Qt.PenStyle.DashLine))
+            painter.drawLine(QPointF(x, middle.y()), QPointF(x + s.mm(4.0), middle.y()))
+        elif kind == "bar":
+            self._bar(painter, QPointF(x + s.mm(0.5), middle.y()),
+                      QPointF(x + s.mm(3.5), middle.y()), s.mm(0.7), color)
+            self._marker(painter, middle, "dot", color, s.mm(0.7))
+        else:
+            self._marker(painter, middle, kind, color, s.mm(0.9))
+        s.draw_text(painter, s.small, QRectF(x + s.mm(5.0), y, s.width(s.small, text) + 1, h),
+                    text)
+
+    def _marker(self, painter: QPainter, centre: QPointF, kind: str, color: QColor,
+                radius: float) -> None:
+        painter.setPen(self.style.pen(PAPER, 0.3))
+        painter.setBrush(color)
+        if kind == "diamond":
+            r = radius * 1.3
+            painter.drawPolygon(QPolygonF([centre + QPointF(0, -r), centre + QPointF(r, 0),
+                                           centre + QPointF(0, r), centre + QPointF(-r, 0)]))
+        else:
+            painter.drawEllipse(centre, radius, radius)
+        painter.setBrush(Qt.BrushStyle.NoBrush)
+
+    def _bar(self, painter: QPainter, start: QPointF, end: QPointF, cap: float,
+             color: QColor) -> None:
+        """A line from ``start`` to ``end`` with a cross-stroke ``cap`` long either side at each
+        end."""
+        painter.setPen(self.style.pen(color, 0.6))
+        painter.drawLine(start, end)
+        across = QPointF(0, cap) if start.y() == end.y() else QPointF(cap, 0)
+        for point in (start, end):
+            painter.drawLine(point - across, point + across)
+
+    def _plot(self, painter: QPainter, plot: QRectF, across: bool) -> None:
+        """The points in ``plot``: entries along x when ``across``, else down y (best on top)."""
+        s = self.style
+        low, high = self.ticks[0], self.ticks[-1]
+        extent = plot.width() if across else plot.height()
+        step = extent / max(len(self.points), 1)
+        start = plot.left() if across else plot.top()
+        end = start + extent
+
+        def at(place: float, value: float) -> QPointF:
+            share = (value - low) / (high - low)
+            if across:
+                return QPointF(place, plot.bottom() - share * plot.height())
+            return QPointF(plot.left() + share * plot.width(), place)
+
+        small = s.line(s.small)
+        for tick, text in zip(self.ticks, self.tick_texts, strict=True):
+            painter.setPen(s.pen(_faded(ACCENT, 60), 0.3))
+            painter.drawLine(at(start, tick), at(end, tick))
+            point = at(start, tick)
+            if across:
+                box = QRectF(plot.left() - s.mm(21.5), point.y() - small / 2, s.mm(20), small)
+                s.draw_text(painter, s.small, box, text, RIGHT_FLAGS)
+            else:
+                box = QRectF(point.x() - s.mm(10), plot.bottom() + s.mm(0.8), s.mm(20), small)
+                s.draw_text(painter, s.small, box, text, CENTRE_FLAGS)
+        painter.setPen(s.pen(BLACK, 0.5))
+        painter.drawLine(plot.bottomLeft(), plot.topLeft())
+        painter.drawLine(plot.bottomLeft(), plot.bottomRight())
+        if _finite(self.column.grand_mean):
+            painter.setPen(s.pen(ACCENT, 0.8, Qt.PenStyle.DashLine))
+            painter.drawLine(at(start, self.column.grand_mean), at(end, self.column.grand_mean))
+        radius = min(s.mm(0.9), step * 0.38)
+        cap = min(s.mm(0.8), step * 0.3)
+        every = max(1, math.ceil(small * 1.05 / step))
+        for k, (entry, is_check, mean) in enumerate(self.points):
+            place = start + (k + 0.5) * step
+            color = CHECK_PEN if is_check else ENTRY_PEN
+            if self.half:
+                self._bar(painter, at(place, mean - self.half), at(place, mean + self.half), cap,
+                          color)
+            self._marker(painter, at(place, mean), "diamond" if is_check else "dot", color,
+                         radius)
+            if k % every:
+                continue
+            text = s.elide(s.small, entry, self.label_w)
+            label_color = CHECK_PEN if is_check else BLACK
+            if across:
+                painter.save()
+                painter.translate(place, plot.bottom() + s.mm(1.0))
+                painter.rotate(-90)
+                s.draw_text(painter, s.small, QRectF(-self.label_w, -small / 2, self.label_w,
+                                                     small), text, RIGHT_FLAGS, label_color)
+                painter.restore()
+            else:
+                box = QRectF(plot.left() - s.mm(1.5) - self.label_w, place - small / 2,
+                             self.label_w, small)
+                s.draw_text(painter, s.small, box, text, RIGHT_FLAGS, label_color)
+
+
+def _share(widths: list[float], room: float) -> list[float]:
+    """Widths that add up to ``room``: the spare room shared out evenly, or, when there is too
+    little, the widest cut to one common width and the others left whole."""
+    total = sum(widths)
+    if total <= room or not widths:
+        return [w + (room - total) / len(widths) for w in widths]
+    left, cap = room, room / len(widths)
+    for k, width in enumerate(sorted(widths)):
+        cap = left / (len(widths) - k)
+        if width > cap:
+            break
+        left -= width
+    return [min(width, cap) for width in widths]
+
+
+def _ticks(low: float, high: float, count: int = 5) -> tuple[list[float], int]:
+    """About ``count`` round steps (1, 2 or 5 times a power of ten) spanning ``low`` to ``high``,
+    and the decimals they need (common practice for chart axes)."""
+    if not high > low:
+        low, high = low - 1.0, high + 1.0
+    raw = (high - low) / count
+    power = 10.0 ** math.floor(math.log10(raw))
+    step = next(m * power for m in (1, 2, 5, 10) if m * power >= raw * (1 - 1e-9))
+    first = math.floor(low / step + 1e-9) * step
+    last = math.ceil(high / step - 1e-9) * step
+    ticks = [first + k * step for k in range(round((last - first) / step) + 1)]
+    return ticks, max(0, -math.floor(math.log10(step) + 1e-9))
+
+
+class _Notes:
+    """The footnotes (one paragraph each, "Notes" over the first) and the cautions box."""
+
+    def __init__(self, report: TrialReport, style: _Style) -> None:
+        self.style = style
+        self.footnotes = report.footnotes
+        self.cautions = report.cautions
+        self.pad = style.mm(2.0)
+
+    def paragraph_height(self, index: int, width: float) -> float:
+        s = self.style
+        lines = s.wrap(s.note, self.footnotes[index], width)
+        return len(lines) * s.line(s.note) + (s.line(s.note_bold) if index == 0 else 0.0)
+
+    def draw_paragraph(self, painter: QPainter, index: int, rect: QRectF) -> None:
+        s = self.style
+        y = rect.top()
+        if index == 0:
+            y = s.draw_lines(painter, s.note_bold, rect.left(), y, rect.width(), ["Notes"])
+        s.draw_lines(painter, s.note, rect.left(), y, rect.width(),
+                     s.wrap(s.note, self.footnotes[index], rect.width()))
+
+    def cautions_height(self, width: float) -> float:
+        s = self.style
+        lines = s.wrap(s.note, self.cautions, width - 2 * self.pad)
+        return 2 * self.pad + s.line(s.note_bold) + len(lines) * s.line(s.note)
+
+    def draw_cautions(self, painter: QPainter, rect: QRectF) -> None:
+        s, pad = self.style, self.pad
+        painter.setPen(s.pen(ACCENT, 0.7))
+        painter.setBrush(Qt.BrushStyle.NoBrush)
+        painter.drawRect(rect)
+        inner = rect.width() - 2 * pad
+        y = s.draw_lines(painter, s.note_bold, rect.left() + pad, rect.top() + pad, inner,
+                         ["Cautions"])
+        s.draw_lines(painter, s.note, rect.left() + pad, y, inner,
+                     s.wrap(s.note, self.cautions, inner))
+
+
+# --- laying the pages out ------------------------------------------------------------------------
+
+
+@dataclass
+class _Area:
+    """Free room on a page for what follows the table, filled from the top."""
+
+    page: int
+    rect: QRectF
+    cursor: float
+    whole_page: bool = False
+    after: _Area | None = None  # the room beside the table on the same page, used first
+
+
+@dataclass
+class _Item:
+    """A block that follows the table: its height at a width, and how it is drawn."""
+
+    height: Callable[[_Area], float]
+    draw: Callable[[QPainter, QRectF], None]
+    space: float
+
+
+class _Parts:
+    """The blocks of the report measured for one text size and page width."""
+
+    def __init__(self, report: TrialReport, style: _Style, table: _Table, width: float,
+                 height: float) -> None:
+        self.report = report
+        self.style = style
+        self.width = width
+        self.height = height
+        self.table = table
+        self.header = _Header(report, style, width)
+        self.running = _RunningHead(report, style, width)
+        self.chart = _Chart(report, style)
+        self.notes = _Notes(report, style)
+
+
+@dataclass
+class _Plan:
+    """One way of laying the report out: what each page draws."""
+
+    layout: QPageLayout
+    parts: _Parts
+    chart_first: bool  # the chart before the notes (else after the cautions)
+    chart_share: float  # 0 for the chart's least height, 1 for its preferred one
+    pages: list[list[Draw]] = field(default_factory=list)
+    table_pages: int = 0
+    chart_page: int = 0
+    notes_pages: set[int] = field(default_factory=set)  # pages of the notes and the cautions
+
+    @property
+    def size(self) -> float:
+        return self.parts.style.size
+
+    @property
+    def chart_moved(self) -> bool:
+        """Whether the chart was put first but still went past the table's last page."""
+        return self.chart_first and self.chart_page > self.table_pages
+
+
+def _lay_out(plan: _Plan) -> _Plan:
+    """Fill ``plan.pages``: the table page by page, then the chart, notes and cautions."""
+    parts = plan.parts
+    s, width, report = parts.style, parts.width, parts.report
+    table, chart, notes = parts.table, parts.chart, parts.notes
+    pages = plan.pages
+    bottom = parts.height - s.mm(FOOTER_MM)
+    gap = s.mm(GAP_MM)
+
+    def new_page() -> float:
+        head = parts.running if pages else parts.header
+        pages.append([head.draw])
+        return head.height
+
+    areas: list[_Area] = []
+    side = width - table.width - gap
+    rows, start = report.rows, 0
+    while True:
+        y = new_page()
+        page = len(pages) - 1
+        room = bottom - y - table.head_h
+        left = len(rows) - start
+        last = left * table.row_h + table.bottom_h <= room
+        take = left if last else min(int(room // table.row_h), left - 1)
+        if take <= 0:  # not even one row and the statistics fit a page: print them anyway
+            take, last = left, True
+        chunk, first = rows[start:start + take], start
+        pages[page].append(lambda p, y=y: table.draw_head(p, y))
+        pages[page].append(lambda p, y=y + table.head_h, chunk=chunk, first=first:
+                           table.draw_rows(p, y, chunk, first))
+        end = y + table.head_h + take * table.row_h
+        start += take
+        beside = None
+        if side >= s.mm(SIDE_MM):
+            beside = _Area(page, QRectF(table.width + gap, y, side, bottom - y), y)
+            areas.append(beside)
+        if last:
+            plan.table_pages = len(pages)
+            pages[page].append(lambda p, y=end: table.draw_bottom(p, y))
+            end += table.bottom_h + gap
+            areas.append(_Area(page, QRectF(0, end, width, bottom - end), end, after=beside))
+            break
+
+    def chart_height(area: _Area) -> float:
+        low, high = chart.heights(area.rect.width(), own_page=area.whole_page)
+        wanted = low + plan.chart_share * (high - low)
+        if area.whole_page:
+            return min(wanted, area.rect.bottom() - area.cursor)
+        return wanted
+
+    paragraphs = [
+        _Item(lambda a, i=i: notes.paragraph_height(i, a.rect.width()),
+              lambda p, r, i=i: notes.draw_paragraph(p, i, r), s.mm(0.7))
+        for i in range(len(notes.footnotes))]
+    cautions = _Item(lambda a: notes.cautions_height(a.rect.width()), notes.draw_cautions, gap)
+    picture = _Item(chart_height, chart.draw, gap)
+    items = ([picture, *paragraphs, cautions] if plan.chart_first
+             else [*paragraphs, cautions, picture])
+    current = 0
+    for item in items:
+        while True:
+            if current == len(areas):
+                y = new_page()
+                areas.append(_Area(len(pages) - 1, QRectF(0, y, width, bottom - y), y,
+                                   whole_page=True))
+            area = areas[current]
+            if area.after is not None and area.after.cursor > area.after.rect.top():
+                area.cursor = max(area.cursor, area.after.cursor)
+            need = item.height(area)
+            empty = area.whole_page and area.cursor == area.rect.top()
+            if area.cursor + need <= area.rect.bottom() or empty:
+                box = QRectF(area.rect.left(), area.cursor, area.rect.width(), need)
+                pages[area.page].append(lambda p, box=box, item=item: item.draw(p, box))
+                area.cursor += need + item.space
+                if item is picture:
+                    plan.chart_page = area.page + 1
+                else:
+                    plan.notes_pages.add(area.page + 1)
+                break
+            current += 1
+    return plan
+
+
+def _layouts(device: QPagedPaintDevice) -> list[QPageLayout]:
+    """The device's paper, portrait and landscape, with the report's margins."""
+    base = device.pageLayout()
+    margins = QMarginsF(MARGIN_MM, MARGIN_MM, MARGIN_MM, MARGIN_MM)
+    return [QPageLayout(base.pageSize(), orientation, margins, QPageLayout.Unit.Millimeter)
+            for orientation in (QPageLayout.Orientation.Portrait,
+                                QPageLayout.Orientation.Landscape)]
+
+
+def _best_plan(report: TrialReport, device: QPagedPaintDevice,
+               layouts: Sequence[QPageLayout]) -> _Plan:
+    """The layout that prints the report on the fewest pages in the largest type.
+
+    A report that fits one page gets the largest table text that does it (portrait unless the
+    table is too wide for it). A longer one keeps its table on as few pages as the text sizes
+    and orientations allow, then is set as near ``FLOW_SIZE`` as that permits, with the notes and
+    the cautions together on as few pages as may be. With each, the chart comes straight after
+    the table when it fits there (else after the cautions), as tall as the page allows.
+    """
+    dpi = device.logicalDpiY()
+    sizes: list[float] = list(TABLE_SIZES)
+    fitting: list[tuple[QPageLayout, _Parts]] = []  # where the table fits across the page
+    while not fitting:
+        for layout in layouts:
+            rect = layout.paintRectPixels(dpi)
+            for size in sizes:
+                style = _Style(device, size)
+                table = _Table(report, style)
+                # The last resort, a table too wide at any size, is printed cut at the margin.
+                if table.width <= rect.width() or size <= 3.0 and layout is layouts[-1]:
+                    fitting.append((layout, _Parts(report, style, table, rect.width(),
+                                                   rect.height())))
+        sizes = [sizes[-1] - 0.5]  # a very wide table: smaller type until it fits
+    upright = [parts.style.size for layout, parts in fitting
+               if layout.orientation() == QPageLayout.Orientation.Portrait]
+    portrait = bool(upright) and (max(upright) >= PORTRAIT_SIZE or len(upright) == len(fitting))
+    plans = [_lay_out(_Plan(layout=layout, parts=parts, chart_first=chart_first,
+                            chart_share=share))
+             for layout, parts in fitting
+             for chart_first in (True, False) for share in (1.0, 0.75, 0.5, 0.25, 0.0)]
+
+    def turned(plan: _Plan) -> bool:
+        return (plan.layout.orientation() == QPageLayout.Orientation.Portrait) != portrait
+
+    one_page = [plan for plan in plans if len(plan.pages) == 1]
+    if one_page:
+        return min(one_page, key=lambda p: (turned(p), -p.size, not p.chart_first,
+                                            -p.chart_share))
+    return min(plans, key=lambda p: (p.table_pages, turned(p), abs(p.size - FLOW_SIZE),
+                                     len(p.pages), len(p.notes_pages), p.chart_moved,
+                                     not p.chart_first, -p.chart_share))
+
+
+# --- the public routines -------------------------------------------------------------------------
+
+
+def render_report(report: TrialReport, device: QPagedPaintDevice) -> int:
+    """Paint ``report`` onto the pages of ``device``.
+
+    The one drawing routine of the report, for the PDF file and the printer alike. It chooses
+    the page's orientation (landscape when the table is too wide for portrait) and sets 12 mm
+    margins on the device; the paper size is the device's own. A Qt GUI application must exist.
+
+    Parameters
+    ----------
+    report : TrialReport
+        The report to print (:func:`trialdesk.core.report.build_report`).
+    device : QPagedPaintDevice
+        A QPdfWriter, or a QPrinter set up by the print dialog; nothing may be painting on it.
+
+    Returns
+    -------
+    int
+        The number of pages printed.
+
+    Raises
+    ------
+    TrialInputError
+        When the device cannot be painted on (for instance a file that cannot be opened).
+    """
+    plan = _best_plan(report, device, _layouts(device))
+    if not device.setPageLayout(plan.layout):
+        # A printer that refuses the margins: keep its own, turn the page, lay out again.
+        device.setPageOrientation(plan.layout.orientation())
+        plan = _best_plan(report, device, [device.pageLayout()])
+    parts = plan.parts
+    footer = _Footer(report, parts.style, parts.width, parts.height)
+    painter = QPainter()
+    if not painter.begin(device):
+        raise TrialInputError("the report could not be printed: the printer or file did not "
+                              "open for drawing")
+    try:
+        painter.setRenderHint(QPainter.RenderHint.Antialiasing)
+        painter.setRenderHint(QPainter.RenderHint.TextAntialiasing)
+        for number, page in enumerate(plan.pages, start=1):
+            if number > 1:
+                device.newPage()
+            for draw in page:
+                draw(painter)
+            footer.draw(painter, number, len(plan.pages))
+    finally:
+        painter.end()
+    return len(plan.pages)
+
+
+def _application() -> None:
+    """Make sure a Qt GUI application exists; without a display, an offscreen one."""
+    global _app
+    if QGuiApplication.instance() is not None:
+        return
+    no_display = not (os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY"))
+    # Windows and macOS always have their own window system; elsewhere no display means none.
+    if (not os.environ.get("QT_QPA_PLATFORM") and no_display
+            and sys.platform not in ("win32", "darwin")):
+        os.environ["QT_QPA_PLATFORM"] = "offscreen"
+    _app = QGuiApplication([sys.argv[0] if sys.argv and sys.argv[0] else "trialdesk"])
+
+
+def write_pdf(report: TrialReport, path: str | os.PathLike[str], *, paper: str = "A4") -> Path:
+    """Write ``report`` to a PDF file at ``path``.
+
+    The file is written beside the target under a temporary name and moved into place when
+    complete, so a crash never leaves half a PDF, nor spoils a good file already there. Works
+    with no display (an offscreen Qt application is made when there is none).
+
+    Parameters
+    ----------
+    report : TrialReport
+        The report to print (:func:`trialdesk.core.report.build_report`).
+    path : str or path-like
+        The PDF file to write; an existing file is replaced.
+    paper : {"A4", "Letter"}
+        The paper size.
+
+    Returns
+    -------
+    Path
+        The file written.
+
+    Raises
+    ------
+    TrialInputError
+        For an unknown paper size, or a path that cannot be written (no such folder, no
+        permission, a folder of that name, a full disk); the message names the file.
+    """
+    target = Path(path)
+    if paper not in PAPERS:
+        raise TrialInputError(f"the paper size must be {' or '.join(PAPERS)}, not '{paper}'",
+                              file=str(target))
+    if target.is_dir():
+        raise TrialInputError("this is a folder: give the name of the PDF file to write",
+                              file=str(target))
+    _application()
+    try:
+        handle, temp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part",
+                                        dir=target.parent)
+    except OSError as error:
+        raise TrialInputError(f"the report cannot be written here ({error.strerror or error})",
+                              file=str(target)) from None
+    os.close(handle)
+    try:
+        writer = QPdfWriter(temp)
+        try:
+            writer.setPageSize(QPageSize(PAPERS[paper]))
+            writer.setTitle(report.title)
+            writer.setCreator(f"Trialdesk {VERSION}")
+            render_report(report, writer)
+        except TrialInputError as error:
+            raise TrialInputError(error.message, file=str(target)) from None
+        finally:
+            del writer  # closes the file, also when drawing failed
+        with open(temp, "rb") as done:
+            os.fsync(done.fileno())
+        os.replace(temp, target)
+    except OSError as error:
+        raise TrialInputError(f"the report could not be written ({error.strerror or error})",
+                              file=str(target)) from None
+    finally:
+        Path(temp).unlink(missing_ok=True)
+    return target
