@@ -35,6 +35,10 @@ _PUBLIC = {
     "TrialAnalysis": "results",
     "TraitResult": "results",
     "analysis_text": "summary_text",
+    "TrialReport": "report",
+    "build_report": "report",
+    "trial_context": "report",
+    "write_workbook": "workbook",
 }
 
 __all__ = sorted(_PUBLIC)

@@ -1,7 +1,8 @@
 """Batch sub-commands of the ``trialdesk`` command (no Qt here).
 
 ``trialdesk analyze FILE ...`` analyses a field book or a trial file and prints a readable summary
-(or JSON); ``trialdesk demo`` analyses the bundled demo trial; ``trialdesk import`` makes a trial
+(or JSON), and with ``--workbook``/``--pdf`` writes the results workbook and the printable trial
+summary; ``trialdesk demo`` analyses the bundled demo trial; ``trialdesk import`` makes a trial
 file from a field book (or shows what a re-import would change); ``trialdesk export`` writes a
 trial's plots as a field book, filled in or blank. Exit status: 0 on success, 2 on bad input, with
 the message on standard error and no traceback.
@@ -11,13 +12,20 @@ from __future__ import annotations
 
 import argparse
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from typing import Any
 
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.separation import CHECK_DIRECTIONS, METHODS
 
 EXIT_OK = 0
 EXIT_BAD_INPUT = 2
+
+#: Papers of the PDF summary.
+PAPERS = ("A4", "Letter")
+
+#: Draws the PDF summary: ``(report, path, paper)``.
+PdfWriter = Callable[[Any, str, str], Any]
 
 
 def _add_role_options(parser: argparse.ArgumentParser) -> None:
@@ -49,8 +57,19 @@ def _add_analysis_options(parser: argparse.ArgumentParser) -> None:
     analysis.add_argument("--alpha", type=float, help="significance level (default 0.05)")
     analysis.add_argument("--check-direction", choices=CHECK_DIRECTIONS,
                           help="Dunnett: both sides, or one-sided 'above' or 'below' the checks")
+    _add_report_options(parser)
     parser.add_argument("--json", metavar="PATH", help="write the JSON result to PATH ('-': "
                         "standard output, instead of the readable summary)")
+
+
+def _add_report_options(parser: argparse.ArgumentParser) -> None:
+    reports = parser.add_argument_group("reports")
+    reports.add_argument("--workbook", metavar="PATH",
+                         help="write the results workbook (.xlsx) to PATH")
+    reports.add_argument("--pdf", metavar="PATH",
+                         help="write the printable trial summary (PDF) to PATH")
+    reports.add_argument("--paper", choices=PAPERS, default="A4",
+                         help="paper of the PDF summary (default A4)")
 
 
 def _add_import_options(parser: argparse.ArgumentParser) -> None:
@@ -100,6 +119,7 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--print", action="store_true",
                       help="print the demo trial's summary (no window)")
     demo.add_argument("--json", metavar="PATH", help="write the JSON result to PATH or '-'")
+    _add_report_options(demo)
     imp = sub.add_parser("import", help="make a trial file from a field book",
                          description="Make a trial file from a field book, or show (and with "
                          "--apply make) the changes a re-import into an existing trial brings.")
@@ -226,7 +246,7 @@ def _run_export(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _run(args: argparse.Namespace) -> int:
+def _run(args: argparse.Namespace, pdf_writer: PdfWriter | None = None) -> int:
     if args.command == "import":
         return _run_import(args)
     if args.command == "export":
@@ -238,8 +258,11 @@ def _run(args: argparse.Namespace) -> int:
 
     book, settings, notes = _book_and_settings(args)
     result = analyze(book, settings, notes=notes)
+    written = _write_reports(args, result, book, pdf_writer)
     if args.json == "-":
         sys.stdout.write(analysis_to_json(result) + "\n")
+        for line in written:
+            print(line, file=sys.stderr)
         return EXIT_OK
     if args.json:
         try:
@@ -248,14 +271,53 @@ def _run(args: argparse.Namespace) -> int:
             raise TrialInputError(f"cannot write the JSON result: {exc.strerror}",
                                   file=args.json) from None
     sys.stdout.write(analysis_text(result))
+    for line in written:
+        print(line)
     return EXIT_OK
 
 
-def main(argv: Sequence[str] | None = None) -> int:
-    """Run a batch sub-command; returns the exit status."""
+def _write_reports(args: argparse.Namespace, analysis, book, pdf_writer: PdfWriter | None
+                   ) -> list[str]:
+    """Write the workbook and the PDF summary asked for; the lines saying what was written."""
+    if not (args.workbook or args.pdf):
+        return []
+    from trialdesk.core.report import build_report, trial_context
+
+    if args.command == "demo":
+        import pandas as pd
+
+        from trialdesk.core.demo import DEMO_FACTS, DEMO_TRAITS
+
+        traits = pd.DataFrame([{"name": name, "unit": fields["unit"], "decimals": None}
+                               for name, fields in DEMO_TRAITS.items()])
+        context = {"facts": DEMO_FACTS, "traits": traits}
+    else:
+        context = trial_context(args.fieldbook)
+    report = build_report(analysis, book, **context)
+    written = []
+    if args.pdf:
+        if pdf_writer is None:
+            raise TrialInputError("the PDF summary is drawn by the desktop part of Trialdesk: "
+                                  "run it through the trialdesk command", file=args.pdf)
+        pdf_writer(report, args.pdf, args.paper)
+        written.append(f"Wrote the trial summary to {args.pdf}.")
+    if args.workbook:
+        from trialdesk.core.workbook import write_workbook
+
+        write_workbook(report, args.workbook, book=book)
+        written.append(f"Wrote the results workbook to {args.workbook}.")
+    return written
+
+
+def main(argv: Sequence[str] | None = None, *, pdf_writer: PdfWriter | None = None) -> int:
+    """Run a batch sub-command; returns the exit status.
+
+    ``pdf_writer(report, path, paper)`` draws the PDF summary. The core never loads Qt, so the
+    ``trialdesk`` command passes the desktop part's writer; without one, ``--pdf`` is refused.
+    """
     args = build_parser().parse_args(argv)
     try:
-        return _run(args)
+        return _run(args, pdf_writer)
     except TrialInputError as exc:
         print(f"trialdesk: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT

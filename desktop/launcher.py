@@ -3,7 +3,8 @@
 Without a sub-command (or with a trial file or field book to open) it starts the desktop program;
 ``trialdesk demo`` opens it on the demo trial. The batch sub-commands (``analyze``, ``import``,
 ``export``, and ``demo --print``) run in trialdesk.core without loading Qt, so the command line
-stays quick and works on machines with no display.
+stays quick and works on machines with no display; only ``--pdf`` loads Qt, offscreen, to draw
+the printable summary.
 """
 
 from __future__ import annotations
@@ -20,8 +21,15 @@ def _is_batch(args: list[str]) -> bool:
     first = args[0]
     if first in BATCH_COMMANDS or first in ("-h", "--help"):
         return True
-    return first == "demo" and any(a in ("--print", "--json") or a.startswith("--json=")
+    return first == "demo" and any(a.split("=")[0] in ("--print", "--json", "--workbook", "--pdf")
                                    for a in args[1:])
+
+
+def _write_pdf(report, path: str, paper: str) -> None:
+    """The PDF summary for the batch commands, drawn by Qt offscreen (loaded only when asked)."""
+    from trialdesk.desktop.report_pdf import write_pdf
+
+    write_pdf(report, path, paper=paper)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -30,7 +38,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     if _is_batch(args):
         from trialdesk.core.cli import main as batch_main
 
-        return batch_main(args)
+        return batch_main(args, pdf_writer=_write_pdf)
     from trialdesk.desktop.app import run
 
     return run(args)

@@ -35,6 +35,7 @@ class MainWindow(QMainWindow):
     """The Trialdesk window. ``pages_ready`` fires once the pages exist."""
 
     pages_ready = Signal()
+    report_written = Signal(str)  # a workbook or PDF was written (or failed): its path
 
     def __init__(self, parent: QWidget | None = None) -> None:
         super().__init__(parent)
@@ -88,7 +89,12 @@ class MainWindow(QMainWindow):
         self.act_export = self._action("&Export plot data...", self.export_plots, keys.SaveAs,
                                        "Write the plot data as a field book (CSV or XLSX)")
         self.act_blank = self._action("Export &blank field book...", self.export_blank)
-        self.act_print = self._action("&Print summary...", self.print_summary, keys.Print)
+        self.act_workbook = self._action(
+            "Save results &workbook...", self.save_workbook, "Ctrl+Shift+W",
+            "Write the results workbook (summary, one sheet per trait, diagnostics, data)")
+        self.act_pdf = self._action("Save trial summary as P&DF...", self.save_pdf, "Ctrl+Shift+P",
+                                    "Write the one-page trial summary as a PDF")
+        self.act_print = self._action("&Print trial summary...", self.print_summary, keys.Print)
         self.act_close = self._action("&Close trial", self.close_trial, keys.Close)
         self.act_quit = self._action("&Quit", self.close, keys.Quit)
         self.act_undo = self._action("&Undo", self.undo, keys.Undo)
@@ -101,7 +107,8 @@ class MainWindow(QMainWindow):
         self.act_run = self._action("&Run analysis", self.run_analysis, "Ctrl+R")
         self.act_cancel = self._action("&Cancel analysis", self.cancel_analysis)
         self.act_about = self._action("&About Trialdesk", self.show_about)
-        for action in (self.act_undo, self.act_redo, self.act_cancel):
+        for action in (self.act_undo, self.act_redo, self.act_cancel, self.act_workbook,
+                       self.act_pdf, self.act_print):
             action.setEnabled(False)
 
     def _build_menus(self) -> None:
@@ -111,7 +118,7 @@ class MainWindow(QMainWindow):
             trial.addAction(action)
         self.recent_menu = trial.addMenu("Recent trials")
         trial.addSeparator()
-        for action in (self.act_export, self.act_blank, self.act_print):
+        for action in (self.act_export, self.act_blank):
             trial.addAction(action)
         trial.addSeparator()
         trial.addAction(self.act_close)
@@ -123,6 +130,9 @@ class MainWindow(QMainWindow):
         analysis = bar.addMenu("&Analysis")
         analysis.addAction(self.act_run)
         analysis.addAction(self.act_cancel)
+        report = bar.addMenu("Re&port")
+        for action in (self.act_workbook, self.act_pdf, self.act_print):
+            report.addAction(action)
         bar.addMenu("&Help").addAction(self.act_about)
         self._refresh_recent()
         toolbar = self.addToolBar("Main")
@@ -143,7 +153,7 @@ class MainWindow(QMainWindow):
 
     def _build_pages(self) -> None:
         """Make the session and the pages (after the window is on screen)."""
-        from trialdesk.desktop.analysis_runner import AnalysisRunner
+        from trialdesk.desktop.analysis_runner import AnalysisRunner, Background
         from trialdesk.desktop.analysis_setup import AnalysisSetup
         from trialdesk.desktop.entries_panel import EntriesPanel
         from trialdesk.desktop.facts_panel import FactsPanel
@@ -182,6 +192,8 @@ class MainWindow(QMainWindow):
         self.session.opened.connect(self._on_opened)
         self.session.undo_changed.connect(self._on_undo_changed)
         self.session.results_changed.connect(self._update_title)
+        self.session.results_changed.connect(self._results_changed)
+        self.reports = Background(self)
         index = QSettings().value("window/tab", 0, type=int)
         self.tabs.setCurrentIndex(index if 0 <= index < self.tabs.count() else 0)
         self.pages_ready.emit()
@@ -361,21 +373,94 @@ class MainWindow(QMainWindow):
     def export_blank(self) -> None:
         self.export_plots(blank=True)
 
-    def print_summary(self) -> None:
-        """Print the results summary (plain text) through the system's print dialog."""
-        if self.session is None or self.session.results is None:
+    def current_report(self):
+        """The report of the current results, or None (told why) when there are none or they are
+        out of date: a report of results that no longer match the data would mislead."""
+        session = self.session
+        if session is None or session.results is None:
             self.statusBar().showMessage("Run the analysis first.", 5000)
+            return None
+        if session.results_stale:
+            self.show_error("The results are out of date: the data changed after the analysis. "
+                            "Run the analysis again before making a report.")
+            return None
+        from trialdesk.core.report import build_report
+
+        return build_report(session.results, session.results_book, facts=session.facts,
+                            traits=session.traits, entries=session.entries)
+
+    def _report_path(self, title: str, suffix: str, kind: str) -> str | None:
+        suggested = self.session.path.with_name(f"{self.session.path.stem} results{suffix}")
+        name, _ = QFileDialog.getSaveFileName(self, title, str(suggested), kind)
+        if name and not name.lower().endswith(suffix):
+            name += suffix
+        return name or None
+
+    def save_workbook(self, path: str | Path | None = None) -> None:
+        """Write the results workbook (in the background: a large trial takes seconds)."""
+        report = self.current_report()
+        if report is None:
             return
-        from PySide6.QtGui import QTextDocument
+        path = path or self._report_path("Save results workbook", ".xlsx",
+                                         "Excel workbooks (*.xlsx)")
+        if not path:
+            return
+        from trialdesk.core.workbook import write_workbook
+
+        book = self.session.results_book
+        self.statusBar().showMessage(f"Writing {Path(path).name}...")
+        self.reports.submit("workbook", lambda: write_workbook(report, path, book=book),
+                            lambda outcome: self._report_written(outcome, path))
+
+    def save_pdf(self, path: str | Path | None = None, paper: str = "A4") -> None:
+        """Write the printable trial summary as a PDF."""
+        report = self.current_report()
+        if report is None:
+            return
+        path = path or self._report_path("Save trial summary as PDF", ".pdf", "PDF (*.pdf)")
+        if not path:
+            return
+        from trialdesk.core.errors import TrialInputError
+        from trialdesk.desktop.report_pdf import write_pdf
+
+        try:
+            write_pdf(report, path, paper=paper)
+        except TrialInputError as error:
+            self._report_written(error, path)
+            return
+        self._report_written(Path(path), path)
+
+    def _report_written(self, outcome, path: str | Path) -> None:
+        from trialdesk.core.errors import TrialInputError
+
+        if isinstance(outcome, TrialInputError):
+            self.show_error(str(outcome))
+        else:
+            self.statusBar().showMessage(f"Wrote {path}.", 8000)
+        self.report_written.emit(str(path))
+
+    def print_summary(self) -> None:
+        """Print the trial summary through the system's print dialog."""
+        report = self.current_report()
+        if report is None:
+            return
         from PySide6.QtPrintSupport import QPrintDialog, QPrinter
 
-        from trialdesk.core.summary_text import analysis_text
-
-        printer = QPrinter()
+        printer = QPrinter(QPrinter.PrinterMode.HighResolution)
         if QPrintDialog(printer, self).exec():
-            document = QTextDocument()
-            document.setPlainText(analysis_text(self.session.results))
-            document.print_(printer)
+            self.print_to(printer, report)
+
+    def print_to(self, printer, report=None) -> int:
+        """Draw the trial summary on a printer (the same drawing as the PDF); the page count."""
+        from trialdesk.desktop.report_pdf import render_report
+
+        report = report if report is not None else self.current_report()
+        return 0 if report is None else render_report(report, printer)
+
+    def _results_changed(self) -> None:
+        ready = self.session.results is not None
+        for action in (self.act_workbook, self.act_pdf, self.act_print):
+            action.setEnabled(ready)
 
     def show_about(self) -> None:
         from trialdesk.core.cautions import CAUTIONS
@@ -445,6 +530,7 @@ class MainWindow(QMainWindow):
         settings.setValue("window/tab", self.tabs.currentIndex())
         if self.runner is not None:
             self.runner.shutdown()
+            self.reports.wait()  # a workbook being written is finished, not cut off
         if self.session is not None:
             self.session.close()
         super().closeEvent(event)

@@ -85,6 +85,7 @@ class TrialSession(QObject):
         self.problems: list[Problem] = []
         self.outlier_problems: list[Problem] = []  # the part of problems from the last analysis
         self._book = None  # the field book of the current data, built when first asked for
+        self.results_book = None  # the field book the current results came from
 
     # --- opening and closing ------------------------------------------------------------------
 
@@ -121,7 +122,7 @@ class TrialSession(QObject):
         if self.trial is not None:
             self.trial.close()
             self.trial = None
-            self._book = None
+            self._book = self.results_book = None
             self.results = None
             self.results_stale = False
             self.opened.emit()
@@ -304,6 +305,8 @@ class TrialSession(QObject):
         self.results = results
         self.results_stale = (results is not None and self.trial is not None
                               and results.sha256 != self.fieldbook().sha256)
+        self.results_book = (self.fieldbook() if results is not None and not self.results_stale
+                             else None)
         # Only the outlier part of the problem list depends on results: the input checks stand.
         dropped = set(map(id, self.outlier_problems))
         self.outlier_problems = self._outlier_problems()
@@ -369,7 +372,7 @@ def _num(value) -> float | None:
 
 def make_demo_trial(path: Path) -> None:
     """Import the bundled demo field book into a trial file at ``path``."""
-    from trialdesk.core.demo import DEMO_SETTINGS, demo_fieldbook_path
+    from trialdesk.core.demo import DEMO_FACTS, DEMO_SETTINGS, DEMO_TRAITS, demo_fieldbook_path
     from trialdesk.core.fieldbook import read_fieldbook
     from trialdesk.core.importer import import_fieldbook
 
@@ -378,16 +381,6 @@ def make_demo_trial(path: Path) -> None:
     for leftover in (temp, Path(f"{temp}.lock")):
         leftover.unlink(missing_ok=True)
     import_fieldbook(read_fieldbook(demo_fieldbook_path()), temp,
-                     facts={"name": "Tallow Creek AYT 2026",
-                            "station": "Tallow Creek Field Station", "season": "2026 main",
-                            "crop": "wheat", "design": "rcbd",
-                            "plot_length_m": 5.0, "plot_width_m": 1.5, "harvested_area_m2": 6.0,
-                            "standard_moisture_pct": 13.5},
-                     checks=DEMO_SETTINGS.checks, lower_is_better=DEMO_SETTINGS.lower_is_better,
-                     trait_fields={
-                         "grain_yield": {"unit": "t/ha", "low": 1.0, "high": 12.0},
-                         "heading_days": {"unit": "days", "low": 40, "high": 90},
-                         "plant_height": {"unit": "cm", "low": 40, "high": 150},
-                         "test_weight": {"unit": "kg/hl", "low": 60, "high": 88},
-                     })
+                     facts=DEMO_FACTS, checks=DEMO_SETTINGS.checks,
+                     lower_is_better=DEMO_SETTINGS.lower_is_better, trait_fields=DEMO_TRAITS)
     shutil.move(temp, path)

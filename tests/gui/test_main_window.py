@@ -119,3 +119,39 @@ def test_import_through_the_column_role_step(window, tmp_path):
     target = window.import_fieldbook(source, tmp_path / "station.trial", dialog_result=accept)
     assert target.exists() and window.session.path == target
     assert list(window.session.entries["role"]) == ["check", "test", "test"]
+
+
+def test_reports_from_the_window(window, qtbot, tmp_path, monkeypatch):
+    from PySide6.QtGui import QPageLayout
+    from PySide6.QtPrintSupport import QPrinter
+
+    assert not window.act_workbook.isEnabled()  # nothing to report before an analysis
+    with qtbot.waitSignal(window.runner.finished, timeout=60_000):
+        window.run_analysis()
+    assert window.act_workbook.isEnabled() and window.act_print.isEnabled()
+
+    workbook = tmp_path / "demo results.xlsx"
+    chosen = (str(tmp_path / "demo results"), "")  # the suffix is added when left out
+    monkeypatch.setattr("PySide6.QtWidgets.QFileDialog.getSaveFileName", lambda *a, **k: chosen)
+    with qtbot.waitSignal(window.report_written, timeout=60_000) as written:
+        window.save_workbook()
+    assert written.args == [str(workbook)] and workbook.exists()
+
+    pdf = tmp_path / "summary.pdf"
+    with qtbot.waitSignal(window.report_written, timeout=60_000):
+        window.save_pdf(pdf)
+    assert pdf.read_bytes().startswith(b"%PDF")
+
+    # Printing draws the same pages on the printer the dialog gives; here a PDF printer.
+    printer = QPrinter(QPrinter.PrinterMode.HighResolution)
+    printer.setOutputFormat(QPrinter.OutputFormat.PdfFormat)
+    printer.setOutputFileName(str(tmp_path / "printed.pdf"))
+    printer.setPageOrientation(QPageLayout.Orientation.Portrait)
+    assert window.print_to(printer) >= 1
+    assert (tmp_path / "printed.pdf").read_bytes().startswith(b"%PDF")
+
+    # Out-of-date results make no report: the window says why instead.
+    window.session.set_value("101", "grain_yield", 5.9)
+    window.save_pdf(tmp_path / "stale.pdf")
+    assert not (tmp_path / "stale.pdf").exists()
+    assert "out of date" in window.last_error
