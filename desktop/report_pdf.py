@@ -161,8 +161,12 @@ class _Style:
         return self.metrics(font).horizontalAdvance(text)
 
     def widest(self, font: QFont, texts: Sequence[str]) -> float:
+        """The widest of ``texts``, measured among the 16 longest distinct ones: a column of a
+        300-entry trial holds hundreds of numbers, and each layout tried would measure them all
+        (16 by length is ample, since the characters of a column differ little in width)."""
         metrics = self.metrics(font)
-        return max((metrics.horizontalAdvance(t) for t in texts), default=0.0)
+        longest = sorted(set(texts), key=len, reverse=True)[:16]
+        return max((metrics.horizontalAdvance(t) for t in longest), default=0.0)
 
     def line(self, font: QFont) -> float:
         return self.metrics(font).lineSpacing()
