@@ -33,7 +33,7 @@ import os
 import re
 import warnings
 import zipfile
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -99,6 +99,7 @@ _FAR_ROBUST_Z = 6.0
 _FAR_MIN_VALUES = 5
 
 _LIST_AT_MOST = 10
+_PLOT_COLUMNS = ("entry", "block", "plot", "row", "column", "source_row")
 _LARGEST_POSITION = 2**53  # a field row or column; past this a float skips integers
 
 
@@ -113,15 +114,16 @@ class FieldBook:
         typed), ``block`` (str, or None in every row when there is no block column), ``plot``
         (str; "1", "2", ... in file order when the file has no plot column), ``row`` and
         ``column`` (Int64 field position, ``<NA>`` when unknown) and ``source_row`` (int: the row
-        number as the user sees it in the spreadsheet; in a CSV the header is row 1).
+        number as the user sees it in the spreadsheet; in a CSV the header is row 1), and one text
+        column per label kept with ``labels`` (see :func:`read_fieldbook`).
     values : pandas.DataFrame
         Same index as ``plots``; one float64 column per trait under its original name, NaN for a
         missing value.
     traits : tuple of str
         Trait column names in file order.
     roles : dict
-        ``"entry"``, ``"block"``, ``"plot"``, ``"row"``, ``"column"`` -> the original name of the
-        column used for it, or None when there is none.
+        ``"entry"``, ``"block"``, ``"plot"``, ``"row"``, ``"column"`` (and each label kept) -> the
+        original name of the column used for it, or None when there is none.
     source : str
         The path as given.
     sha256 : str
@@ -207,6 +209,7 @@ def read_fieldbook(
     column: str | None = None,
     traits: Sequence[str] | None = None,
     decimal_comma: bool = False,
+    labels: Mapping[str, str] | None = None,
 ) -> FieldBook:
     """Read a field book (one row per plot) from a CSV or XLSX file.
 
@@ -225,6 +228,12 @@ def read_fieldbook(
     decimal_comma : bool, default False
         Read "4,25" as 4.25. Then a number written with a decimal point is an error, since in such
         files "4.250" may mean four thousand two hundred and fifty.
+    labels : mapping of str to str, optional
+        Further label columns to keep, such as the location and season of a field book holding
+        several environments: ``{"location": "Loc", "season": "Year"}`` keeps column ``Loc`` as
+        ``plots["location"]`` and ``Year`` as ``plots["season"]`` (text, as the spreadsheet shows
+        it; an empty cell is an error). They are never traits, and plot numbers need then only be
+        unique within each combination of their values (plot 101 may be in every location).
 
     Returns
     -------
@@ -261,8 +270,9 @@ def read_fieldbook(
     columns, role_warnings = _find_roles(table, {
         "entry": entry, "block": block, "plot": plot, "row": row, "column": column,
     })
-    trait_columns = _find_traits(table, columns, traits, decimal_comma)
-    plots = _build_plots(table, columns)
+    label_columns = _find_labels(table, columns, labels or {})
+    trait_columns = _find_traits(table, {**columns, **label_columns}, traits, decimal_comma)
+    plots = _build_plots(table, columns, label_columns)
     values = pd.DataFrame(
         {table.names[i]: _trait_values(table, i, decimal_comma) for i in trait_columns},
         columns=[table.names[i] for i in trait_columns],
@@ -277,7 +287,8 @@ def read_fieldbook(
         plots=plots,
         values=values,
         traits=tuple(values.columns),
-        roles={role: None if i is None else table.names[i] for role, i in columns.items()},
+        roles={role: None if i is None else table.names[i]
+               for role, i in {**columns, **label_columns}.items()},
         source=opened.source,
         sha256=opened.sha256,
         sheet=opened.sheet,
@@ -777,6 +788,28 @@ def _resolve_column(table: _Table, wanted: object, what: str) -> int:
     )
 
 
+def _find_labels(table: _Table, columns: dict[str, int | None],
+                 labels: Mapping[str, str]) -> dict[str, int]:
+    """Column index of each further label column the caller named (``labels`` of read_fieldbook).
+    """
+    used = {i: role for role, i in columns.items() if i is not None}
+    found: dict[str, int] = {}
+    for name, wanted in labels.items():
+        if name in _PLOT_COLUMNS:
+            raise ValueError(f"{name!r} is a column of every field book's plots; name the label "
+                             "otherwise")
+        index = _resolve_column(table, wanted, f"the {name} column")
+        if index in used:
+            raise TrialInputError(
+                f"the same column was given as the {used[index]} and the {name} column",
+                file=table.source,
+                column=table.names[index],
+            )
+        used[index] = name
+        found[name] = index
+    return found
+
+
 def _find_traits(
     table: _Table,
     columns: dict[str, int | None],
@@ -942,18 +975,21 @@ def _shown(cell: object) -> str:
 # --- building the result ------------------------------------------------------------------------
 
 
-def _build_plots(table: _Table, columns: dict[str, int | None]) -> pd.DataFrame:
+def _build_plots(table: _Table, columns: dict[str, int | None],
+                 label_columns: dict[str, int]) -> pd.DataFrame:
     count = len(table.numbers)
     entries = _labels(table, columns["entry"], "no entry code in this plot row")
     blocks = (
         np.full(count, None, dtype=object) if columns["block"] is None
         else _labels(table, columns["block"], "no block (replicate) label in this plot row")
     )
+    kept = {name: _labels(table, index, f"no {name} in this plot row")
+            for name, index in label_columns.items()}
     if columns["plot"] is None:
         plots = np.array([str(i) for i in range(1, count + 1)], dtype=object)
     else:
         plots = _labels(table, columns["plot"], "no plot number in this plot row")
-        _check_unique_plots(table, plots, table.names[columns["plot"]])
+        _check_unique_plots(table, plots, table.names[columns["plot"]], kept)
     return pd.DataFrame({
         "entry": pd.Series(entries, dtype="str"),
         "block": pd.Series(blocks, dtype="str" if columns["block"] is not None else object),
@@ -961,6 +997,7 @@ def _build_plots(table: _Table, columns: dict[str, int | None]) -> pd.DataFrame:
         "row": _positions(table, columns["row"]),
         "column": _positions(table, columns["column"]),
         "source_row": np.asarray(table.numbers, dtype=np.int64),
+        **{name: pd.Series(values, dtype="str") for name, values in kept.items()},
     })
 
 
@@ -996,13 +1033,29 @@ def _unknown_positions(count: int) -> pd.arrays.IntegerArray:
     return pd.arrays.IntegerArray(np.zeros(count, dtype=np.int64), np.ones(count, dtype=bool))
 
 
-def _check_unique_plots(table: _Table, plots: np.ndarray, name: str) -> None:
+def _check_unique_plots(table: _Table, plots: np.ndarray, name: str,
+                        labels: dict[str, np.ndarray]) -> None:
+    """Plot numbers are unique in the file, or within each combination of the ``labels``."""
     repeats = repeated_plots(plots, table.numbers)
-    if repeats:
-        first = repeats[0]
-        raise TrialInputError(
-            first.message, file=table.source, row=first.row, plot=first.label, column=name
-        )
+    if not repeats:
+        return
+    within = ""
+    if labels:
+        groups = pd.DataFrame(labels).groupby(list(labels), sort=False).indices
+        for key, rows in groups.items():
+            repeats = repeated_plots(plots[rows], table.numbers[rows])
+            if repeats:
+                values = key if isinstance(key, tuple) else (key,)
+                within = " (within " + ", ".join(
+                    f"{label} '{value}'" for label, value in zip(labels, values, strict=True)
+                ) + ")"
+                break
+        else:
+            return
+    first = repeats[0]
+    raise TrialInputError(
+        first.message + within, file=table.source, row=first.row, plot=first.label, column=name
+    )
 
 
 def _trait_values(table: _Table, index: int, decimal_comma: bool) -> np.ndarray:
