@@ -7,14 +7,17 @@ PDF are one and the same; :func:`write_pdf` makes a PDF file of it, with or with
 Top to bottom: the trial's name and its facts in three or four columns; the all-traits table
 (entries in rank order of the main trait; per trait the mean, grouping letters and marks against
 the checks; percent of the checks), with the grand mean, CV%, critical difference and entry F-test
-under it; a ranked-means chart of the main trait; the footnotes; the cautions in a box. A footer on
-every page names the trial, the page, the analysis date and the Trialdesk version.
+under it; a ranked-means chart of the main trait; the footnotes; the cautions in a box. The chart
+runs the width of the page above the notes, or, where that would not leave the report on one
+page, takes the left of the page with the notes and the cautions beside it. A footer on every page
+names the trial, the page, the analysis date and the Trialdesk version.
 
 The page turns landscape when the table is too wide for a portrait page, and the text size (8.5
-down to 7 pt for the table) is the largest that keeps the report on one page; a trial too long
-for one page is set in 8 pt and flows on to further pages, each with the trial's name, its facts
-and the table's heading repeated. What does not fit beside or below the table moves to the last
-page. The text is real text, so it can be searched and copied from the PDF.
+down to 7 pt for the table, its rows closer at 7.5 and 7 pt) is the largest that keeps the report
+on one page; a trial too long for one page is set in 8 pt and flows on to further pages, each
+with the trial's name, its facts and the table's heading repeated. What does not fit beside or
+below the table moves to the last page. The text is real text, so it can be searched and copied
+from the PDF.
 """
 
 from __future__ import annotations
@@ -64,12 +67,15 @@ __all__ = ["PAPERS", "render_report", "write_pdf"]
 PAPERS = {"A4": QPageSize.PageSizeId.A4, "Letter": QPageSize.PageSizeId.Letter}
 
 MARGIN_MM = 12.0
-TABLE_SIZES = (8.5, 8.0, 7.5, 7.0)  # table text in points, largest first
+# The table's type, most open first: its text in points and the room between its rows in mm.
+TABLE_TYPES = ((8.5, 0.6), (8.0, 0.6), (7.5, 0.6), (7.5, 0.3), (7.0, 0.6), (7.0, 0.3))
 PORTRAIT_SIZE = 7.5  # a table that does not fit a portrait page at this size turns the page
 FLOW_SIZE = 8.0  # table text of a report that needs more than one page anyway
 GAP_MM = 4.0  # between the blocks of a page
 SIDE_MM = 70.0  # the narrowest room beside the table that takes the chart and the notes
 WIDE_CHART_MM = 120.0  # from this width the chart runs the entries across, else down
+CHART_MM = 45.0  # the least height of a chart that runs the entries across
+CHART_SHARE = 0.6  # of the page's width, the chart's when the notes stand beside it
 NAME_MM = 45.0  # the widest an entry's name is printed (longer names are cut short with "…")
 LABEL_MM = 22.0  # the longest entry code printed on the chart
 FOOTER_MM = 7.0
@@ -120,15 +126,16 @@ def _faded(color: QColor, alpha: int) -> QColor:
 
 
 class _Style:
-    """Fonts, their measures and lengths on one device, for one size of table text."""
+    """Fonts, their measures and lengths on one device, for one type of the table."""
 
-    def __init__(self, device: QPagedPaintDevice, size: float) -> None:
+    def __init__(self, device: QPagedPaintDevice, size: float, lead: float) -> None:
         self.device = device
         self.dpi = device.logicalDpiY()
         self.size = size
+        self.lead = lead  # mm between the table's rows
         self.text = self.font(size)
         self.bold = self.font(size, bold=True)
-        self.small = self.font(size - 1.0)
+        self.small = self.font(max(6.5, size - 1.0))
         self.note = self.font(max(6.5, size - 1.0))
         self.note_bold = self.font(max(6.5, size - 1.0), bold=True)
         self.title = self.font(14.0, bold=True)
@@ -340,7 +347,7 @@ class _Table:
         self.report = report
         pad = self.pad = s.mm(0.8)
         rows = report.rows
-        self.row_h = s.line(s.text) + s.mm(0.6)
+        self.row_h = s.line(s.text) + s.mm(s.lead)
         self.rank_w = max(s.width(s.bold, "Rank"),
                           s.widest(s.text, [str(r.rank) for r in rows])) + 2 * pad
         entry_w = max(s.width(s.bold, "Entry"), s.widest(s.text, [r.entry for r in rows]))
@@ -350,12 +357,21 @@ class _Table:
         if self.has_names:
             names = max(s.width(s.bold, "Name"), s.widest(s.text, [r.name for r in rows]))
             self.name_w = min(names, s.mm(NAME_MM)) + 2 * pad
-        labels = s.widest(s.text, BOTTOM_LABELS) + 2 * pad
+        measures = [self._measure(column, index) for index, column in enumerate(report.columns)]
+        # One critical difference for every trait whose name is wider than a trait's numbers
+        # (Dunnett's) is named once, under the row's label, rather than widen every trait.
+        names = {column.critical_name for column in report.columns}
+        self.shared_name = ""
+        if len(report.columns) > 1 and len(names) == 1:
+            name = names.pop()
+            if any(s.width(s.small, name) + 2 * pad > measure[-1] for measure in measures):
+                self.shared_name = name
+        labels = max(s.widest(s.text, BOTTOM_LABELS), s.width(s.small, self.shared_name)) + 2 * pad
         self.entry_w += max(0.0, labels - (self.rank_w + self.entry_w + self.name_w))
         x = self.rank_w + self.entry_w + self.name_w
         self.groups = []
-        for index, column in enumerate(report.columns):
-            group = self._group(column, index, x)
+        for index, (column, measure) in enumerate(zip(report.columns, measures, strict=True)):
+            group = self._group(column, index, x, measure)
             self.groups.append(group)
             x += group.width
         self.percent_left = x
@@ -373,13 +389,16 @@ class _Table:
         self.head_h = (pad + self.title_lines * s.line(s.bold) + s.mm(0.7) + s.line(s.small)
                        + pad)
         self.has_checks = any(r.is_check for r in rows)
-        # The critical differences' names beside the numbers when every one fits, else under.
-        self.name_below = not all(g.name_inline for g in self.groups)
+        # The critical differences' names beside the numbers when every one fits, else on a
+        # line under them (or the one name under the row's label).
+        self.name_below = bool(self.shared_name) or not all(g.name_inline for g in self.groups)
         self.bottom_h = (len(BOTTOM_LABELS) * self.row_h + s.mm(0.6)
                          + (s.line(s.small) if self.name_below else 0.0)
                          + (s.line(s.small) + s.mm(0.6) if self.has_checks else 0.0))
 
-    def _group(self, column: ReportColumn, index: int, left: float) -> _Group:
+    def _measure(self, column: ReportColumn, index: int) -> tuple[float, float, float, float]:
+        """The widths a trait's numbers, letters and marks need, and their total with the
+        padding: (mean, letters, marks, content)."""
         s, pad = self.style, self.pad
         d = column.decimals
         numbers = [_fixed(r.means[index], d) for r in self.report.rows] + [
@@ -393,10 +412,19 @@ class _Table:
         mark_w = s.widest(s.text, [r.marks[index] for r in self.report.rows])
         content = (2 * pad + mean_w + (0.8 * pad + letters_w if letters_w else 0.0)
                    + (0.8 * pad + mark_w if mark_w else 0.0))
+        return mean_w, letters_w, mark_w, content
+
+    def _group(self, column: ReportColumn, index: int, left: float,
+               measure: tuple[float, float, float, float]) -> _Group:
+        """The trait's columns from ``left``, as wide as ``measure`` (:meth:`_measure`), its
+        title and the name of its critical difference need."""
+        s, pad = self.style, self.pad
+        mean_w, letters_w, mark_w, content = measure
+        name_w = 0.0 if self.shared_name else s.width(s.small, column.critical_name)
         # The trait on the first line, its unit and direction under it when they do not fit.
         rest = column.title[len(column.trait):].strip()
         words = max(s.widest(s.bold, column.title.split()), s.widest(s.bold, [column.trait]))
-        width = max(content, s.width(s.small, column.critical_name) + 2 * pad, words + 2 * pad)
+        width = max(content, name_w + 2 * pad, words + 2 * pad)
         if s.width(s.bold, column.title) + 2 * pad <= width:
             title = [column.title]
         else:
@@ -406,7 +434,7 @@ class _Table:
         beside = width - 2.8 * pad - mean_w  # the room right of the numbers
         return _Group(column=column, index=index, left=left, mean_w=mean_w,
                       letters_w=letters_w, mark_w=mark_w, width=width, title=title,
-                      name_inline=s.width(s.small, column.critical_name) <= beside)
+                      name_inline=name_w <= beside)
 
     # Each part of the table is drawn with its top at ``y`` and its left edge at 0.
 
@@ -513,10 +541,13 @@ class _Table:
                     x = group.left + 1.8 * pad + group.mean_w
                     s.draw_text(painter, s.small, QRectF(x, y, group.left + group.width - x, h),
                                 column.critical_name)
-                elif label == "Critical difference":
+                elif label == "Critical difference" and not self.shared_name:
                     s.draw_text(painter, s.small, QRectF(group.left, y + h - s.mm(0.4),
                                                          group.width, small_h),
                                 column.critical_name, CENTRE_FLAGS)
+            if label == "Critical difference" and self.shared_name:
+                s.draw_text(painter, s.small, QRectF(pad, y + h - s.mm(0.4), label_w, small_h),
+                            self.shared_name)
             y += h + (small_h if label == "Critical difference" and self.name_below else 0.0)
         self._separators(painter, top, y)
         s.rule(painter, 0, self.width, y, points=0.8)
@@ -597,20 +628,24 @@ class _Chart:
         lines = len(caption) + (0 if inline else len(legend))
         return len(title) * s.line(s.note_bold) + lines * s.line(s.small) + s.mm(1.5)
 
-    def heights(self, width: float, *, own_page: bool = False) -> tuple[float, float]:
-        """The least and the preferred height of the chart drawn ``width`` wide (taller on a
-        page after the table's, where there is room for it)."""
+    def heights(self, width: float, *, across: bool, tall: bool = False
+                ) -> tuple[float, float]:
+        """The least and the preferred height of the chart drawn ``width`` wide, the entries
+        ``across`` or down (``tall`` where there is room for it: on a page after the table's,
+        or beside the notes)."""
         s = self.style
         head = self._head_h(width)
         small = s.line(s.small)
-        if width >= s.mm(WIDE_CHART_MM):
+        if across:
             axis = small / 2 + self.label_w + s.mm(1.5)
-            return head + axis + s.mm(24), head + axis + s.mm(90 if own_page else 42)
+            return (max(head + axis + s.mm(24), s.mm(CHART_MM)),
+                    head + axis + s.mm(90 if tall else 42))
         axis = small + s.mm(1.5)
         n = max(len(self.points), 4)  # at least: every entry named
         return head + axis + n * small * 1.05, head + axis + n * small * 1.4
 
-    def draw(self, painter: QPainter, rect: QRectF) -> None:
+    def draw(self, painter: QPainter, rect: QRectF, *, across: bool) -> None:
+        """Draw the chart in ``rect``, the entries ``across`` (labels turned up) or down."""
         s = self.style
         width = rect.width()
         title, legend, caption, inline = self._head(width)
@@ -624,7 +659,6 @@ class _Chart:
         if inline:
             y = rect.top() + len(title) * s.line(s.note_bold)
         y = s.draw_lines(painter, s.small, rect.left(), y, width, caption) + s.mm(1.5)
-        across = width >= s.mm(WIDE_CHART_MM)
         small = s.line(s.small)
         tick_w = s.widest(s.small, self.tick_texts)
         if across:
@@ -676,6 +710,19 @@ class _Chart:
         for point in (start, end):
             painter.drawLine(point - across, point + across)
 
+    def _named(self, every: int, close: int) -> set[int]:
+        """The entries named on the axis (by place, from 0): each check that is ``close``
+        places or more from the check named before it, then every ``every``-th entry from the
+        best where that leaves ``every`` places to the names either side."""
+        named: list[int] = []
+        for k in (k for k, point in enumerate(self.points) if point[1]):
+            if not named or k - named[-1] >= close:
+                named.append(k)
+        for k in range(0, len(self.points), every):
+            if all(abs(k - j) >= every for j in named):
+                named.append(k)
+        return set(named)
+
     def _plot(self, painter: QPainter, plot: QRectF, across: bool) -> None:
         """The points in ``plot``: entries along x when ``across``, else down y (best on top)."""
         s = self.style
@@ -710,7 +757,10 @@ class _Chart:
             painter.drawLine(at(start, self.column.grand_mean), at(end, self.column.grand_mean))
         radius = min(s.mm(0.9), step * 0.38)
         cap = min(s.mm(0.8), step * 0.3)
-        every = max(1, math.ceil(small * 1.05 / step))
+        # Names a line apart, but the checks' as close as their letters allow (0.8 of a line,
+        # the height of the letters without the space between lines).
+        named = self._named(max(1, math.ceil(small * 1.05 / step)),
+                            max(1, math.ceil(small * 0.8 / step)))
         for k, (entry, is_check, mean) in enumerate(self.points):
             place = start + (k + 0.5) * step
             color = CHECK_PEN if is_check else ENTRY_PEN
@@ -719,7 +769,7 @@ class _Chart:
                           color)
             self._marker(painter, at(place, mean), "diamond" if is_check else "dot", color,
                          radius)
-            if k % every:
+            if k not in named:
                 continue
             text = s.elide(s.small, entry, self.label_w)
             label_color = CHECK_PEN if is_check else BLACK
@@ -765,12 +815,26 @@ def _ticks(low: float, high: float, count: int = 5) -> tuple[list[float], int]:
     return ticks, max(0, -math.floor(math.log10(step) + 1e-9))
 
 
+def _footnotes(report: TrialReport) -> tuple[str, ...]:
+    """The report's footnotes as printed: the critical differences said once ("HSD 0.05 for
+    every trait") where every trait has the same one."""
+    columns = report.columns
+    names = {column.critical_name for column in columns}
+    if len(columns) < 2 or len(names) > 1:
+        return report.footnotes
+    # The sentence as trialdesk.core.report words it; in any other wording it stays as it is.
+    each = "; ".join(f"{column.critical_name} for {column.trait}" for column in columns)
+    start = f"Critical differences: {each}"
+    return tuple(note.replace(start, f"Critical differences: {names.pop()} for every trait", 1)
+                 if note.startswith(start) else note for note in report.footnotes)
+
+
 class _Notes:
     """The footnotes (one paragraph each, "Notes" over the first) and the cautions box."""
 
     def __init__(self, report: TrialReport, style: _Style) -> None:
         self.style = style
-        self.footnotes = report.footnotes
+        self.footnotes = _footnotes(report)
         self.cautions = report.cautions
         self.pad = style.mm(2.0)
 
@@ -851,6 +915,7 @@ class _Plan:
     parts: _Parts
     chart_first: bool  # the chart before the notes (else after the cautions)
     chart_share: float  # 0 for the chart's least height, 1 for its preferred one
+    side: bool = False  # the chart at the left under the table, the notes and cautions beside it
     pages: list[list[Draw]] = field(default_factory=list)
     table_pages: int = 0
     chart_page: int = 0
@@ -859,6 +924,10 @@ class _Plan:
     @property
     def size(self) -> float:
         return self.parts.style.size
+
+    @property
+    def lead(self) -> float:
+        return self.parts.style.lead
 
     @property
     def chart_moved(self) -> bool:
@@ -899,7 +968,7 @@ def _lay_out(plan: _Plan) -> _Plan:
         end = y + table.head_h + take * table.row_h
         start += take
         beside = None
-        if side >= s.mm(SIDE_MM):
+        if side >= s.mm(SIDE_MM) and not plan.side:
             beside = _Area(page, QRectF(table.width + gap, y, side, bottom - y), y)
             areas.append(beside)
         if last:
@@ -909,8 +978,12 @@ def _lay_out(plan: _Plan) -> _Plan:
             areas.append(_Area(page, QRectF(0, end, width, bottom - end), end, after=beside))
             break
 
+    def across(width: float) -> bool:
+        return width >= s.mm(WIDE_CHART_MM)
+
     def chart_height(area: _Area) -> float:
-        low, high = chart.heights(area.rect.width(), own_page=area.whole_page)
+        low, high = chart.heights(area.rect.width(), across=across(area.rect.width()),
+                                  tall=area.whole_page)
         wanted = low + plan.chart_share * (high - low)
         if area.whole_page:
             return min(wanted, area.rect.bottom() - area.cursor)
@@ -921,9 +994,13 @@ def _lay_out(plan: _Plan) -> _Plan:
               lambda p, r, i=i: notes.draw_paragraph(p, i, r), s.mm(0.7))
         for i in range(len(notes.footnotes))]
     cautions = _Item(lambda a: notes.cautions_height(a.rect.width()), notes.draw_cautions, gap)
-    picture = _Item(chart_height, chart.draw, gap)
-    items = ([picture, *paragraphs, cautions] if plan.chart_first
-             else [*paragraphs, cautions, picture])
+    picture = _Item(chart_height, lambda p, r: chart.draw(p, r, across=across(r.width())), gap)
+    if plan.side:
+        areas.append(_side_by_side(plan, areas.pop(), [*paragraphs, cautions], new_page))
+        items = [*paragraphs, cautions]
+    else:
+        items = ([picture, *paragraphs, cautions] if plan.chart_first
+                 else [*paragraphs, cautions, picture])
     current = 0
     for item in items:
         while True:
@@ -949,6 +1026,32 @@ def _lay_out(plan: _Plan) -> _Plan:
     return plan
 
 
+def _side_by_side(plan: _Plan, below: _Area, notes: Sequence[_Item],
+                  new_page: Callable[[], float]) -> _Area:
+    """Draw the chart at the left of ``below`` (the room under the table), or at the top of a
+    new page when even its least height does not fit there, as tall as ``notes`` beside it are
+    (within its least and wanted heights); return the room right of it, where the notes go."""
+    parts = plan.parts
+    s, chart, width = parts.style, parts.chart, parts.width
+    chart_w = width * CHART_SHARE
+    low, high = chart.heights(chart_w, across=True, tall=True)
+    if below.cursor + low > below.rect.bottom():
+        y = new_page()
+        below = _Area(len(plan.pages) - 1, QRectF(0, y, width, below.rect.bottom() - y), y,
+                      whole_page=True)
+    left = chart_w + s.mm(GAP_MM)
+    column = _Area(below.page, QRectF(left, below.cursor, width - left,
+                                      below.rect.bottom() - below.cursor), below.cursor,
+                   whole_page=below.whole_page)
+    filled = sum(item.height(column) + item.space for item in notes) - notes[-1].space
+    height = min(max(filled, low), low + plan.chart_share * (high - low),
+                 below.rect.bottom() - below.cursor)
+    box = QRectF(0, below.cursor, chart_w, height)
+    plan.pages[below.page].append(lambda p: chart.draw(p, box, across=True))
+    plan.chart_page = below.page + 1
+    return column
+
+
 def _layouts(device: QPagedPaintDevice) -> list[QPageLayout]:
     """The device's paper, portrait and landscape, with the report's margins."""
     base = device.pageLayout()
@@ -962,44 +1065,50 @@ def _best_plan(report: TrialReport, device: QPagedPaintDevice,
                layouts: Sequence[QPageLayout]) -> _Plan:
     """The layout that prints the report on the fewest pages in the largest type.
 
-    A report that fits one page gets the largest table text that does it (portrait unless the
-    table is too wide for it). A longer one keeps its table on as few pages as the text sizes
-    and orientations allow, then is set as near ``FLOW_SIZE`` as that permits, with the notes and
-    the cautions together on as few pages as may be. With each, the chart comes straight after
-    the table when it fits there (else after the cautions), as tall as the page allows.
+    A report that fits one page gets the largest table text that does it, its rows as open as
+    may be (portrait unless the table is too wide for it). A longer one keeps its table on as
+    few pages as the types and orientations allow, then is set as near ``FLOW_SIZE`` as that
+    permits, with the notes and the cautions together on as few pages as may be. With each, the
+    chart comes straight after the table when it fits there (else after the cautions), as tall
+    as the page allows; where only that keeps the report on one page, or on fewer pages, it
+    stands at the left under the table with the notes and the cautions beside it.
     """
     dpi = device.logicalDpiY()
-    sizes: list[float] = list(TABLE_SIZES)
+    types: list[tuple[float, float]] = list(TABLE_TYPES)
     fitting: list[tuple[QPageLayout, _Parts]] = []  # where the table fits across the page
     while not fitting:
         for layout in layouts:
             rect = layout.paintRectPixels(dpi)
-            for size in sizes:
-                style = _Style(device, size)
+            for size, lead in types:
+                style = _Style(device, size, lead)
                 table = _Table(report, style)
                 # The last resort, a table too wide at any size, is printed cut at the margin.
                 if table.width <= rect.width() or size <= 3.0 and layout is layouts[-1]:
                     fitting.append((layout, _Parts(report, style, table, rect.width(),
                                                    rect.height())))
-        sizes = [sizes[-1] - 0.5]  # a very wide table: smaller type until it fits
+        size, lead = types[-1]
+        types = [(size - 0.5, lead)]  # a very wide table: smaller type until it fits
     upright = [parts.style.size for layout, parts in fitting
                if layout.orientation() == QPageLayout.Orientation.Portrait]
     portrait = bool(upright) and (max(upright) >= PORTRAIT_SIZE or len(upright) == len(fitting))
     plans = [_lay_out(_Plan(layout=layout, parts=parts, chart_first=chart_first,
-                            chart_share=share))
+                            chart_share=share, side=side))
              for layout, parts in fitting
-             for chart_first in (True, False) for share in (1.0, 0.75, 0.5, 0.25, 0.0)]
+             for chart_first, share, side in [
+                 *((first, share, False) for first in (True, False)
+                   for share in (1.0, 0.75, 0.5, 0.25, 0.0)),
+                 (True, 1.0, True)]]
 
     def turned(plan: _Plan) -> bool:
         return (plan.layout.orientation() == QPageLayout.Orientation.Portrait) != portrait
 
     one_page = [plan for plan in plans if len(plan.pages) == 1]
     if one_page:
-        return min(one_page, key=lambda p: (turned(p), -p.size, not p.chart_first,
-                                            -p.chart_share))
+        return min(one_page, key=lambda p: (turned(p), -p.size, -p.lead, p.side,
+                                            not p.chart_first, -p.chart_share))
     return min(plans, key=lambda p: (p.table_pages, turned(p), abs(p.size - FLOW_SIZE),
-                                     len(p.pages), len(p.notes_pages), p.chart_moved,
-                                     not p.chart_first, -p.chart_share))
+                                     -p.lead, len(p.pages), len(p.notes_pages), p.chart_moved,
+                                     p.side, not p.chart_first, -p.chart_share))
 
 
 # --- the public routines -------------------------------------------------------------------------

@@ -199,6 +199,8 @@ def test_dunnett_report_has_marks_and_no_letters(qapp, tmp_path):
     text = pdf_text(path)
     assert "letters" not in text.split("Notes")[0]  # no letters column in the table
     assert report.columns[0].critical_name in text  # "Dunnett difference 0.05"
+    # The same for every trait: named once under the table, not under each trait's number.
+    assert text.split("Ranked means")[0].count(report.columns[0].critical_name) == 1
     marked = [r for r in report.rows if any(r.marks)]
     assert marked  # the demo has entries significantly above or below the checks
     for row in marked:
@@ -254,7 +256,7 @@ def test_eighty_entries_flow_on_with_the_heading_repeated(qapp, tmp_path):
     assert CAUTIONS.split(". ")[0] + "." in flowing(pdf_text(path, layout=False))
 
 
-def test_forty_entries_and_six_traits_keep_the_table_on_one_page(qapp, tmp_path):
+def test_forty_entries_and_six_traits_fit_one_page_with_the_chart(qapp, tmp_path):
     traits = {f"trait_{k}": (50.0 + k, 3.0, 1.5) for k in range(1, 7)}
     book, codes = invented_book(tmp_path, 40, 3, traits)
     analysis = analyze(book, AnalysisSettings(method="tukey", checks=("N001", "N002")))
@@ -262,13 +264,22 @@ def test_forty_entries_and_six_traits_keep_the_table_on_one_page(qapp, tmp_path)
     path = write_pdf(report, tmp_path / "forty.pdf")
     picture(path, "report-40x6")
 
+    assert page_count(path) == 1
+    assert pdf_info(path)["Page size"].startswith("595 x 842")  # A4 portrait, in points
     first = pdf_text(path, 1)
     for code in codes:
         assert entry_line(first, code)
     assert statistics_line(first, "Grand mean")
-    count = page_count(path)
-    assert count <= 2  # the chart, when it does not fit, on a page of its own
-    assert "Ranked means of trait_1" in flowing(pdf_text(path, count, layout=False))
+    words = flowing(pdf_text(path, 1, layout=False))
+    assert "Ranked means of trait_1" in words
+    # The chart names both checks: each code is in the facts, the table and the chart's axis.
+    for check in ("N001", "N002"):
+        assert words.count(check) == 3, check
+    assert METHOD_NAMES["tukey"] in words
+    # Every trait has the same critical difference, so the notes name it once.
+    assert "Critical differences: HSD 0.05 for every trait" in words
+    assert "HSD 0.05 for trait_2" not in words
+    assert CAUTIONS.split(". ")[0] + "." in words
 
 
 def test_eight_traits_turn_the_page(qapp, tmp_path):
