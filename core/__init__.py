@@ -39,6 +39,10 @@ _PUBLIC = {
     "build_report": "report",
     "trial_context": "report",
     "write_workbook": "workbook",
+    "SeriesAnalysis": "series_results",
+    "analyze_series": "series",
+    "read_series": "series",
+    "series_from_trials": "series",
 }
 
 __all__ = sorted(_PUBLIC)

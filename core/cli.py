@@ -2,10 +2,11 @@
 
 ``trialdesk analyze FILE ...`` analyses a field book or a trial file and prints a readable summary
 (or JSON), and with ``--workbook``/``--pdf`` writes the results workbook and the printable trial
-summary; ``trialdesk demo`` analyses the bundled demo trial; ``trialdesk import`` makes a trial
-file from a field book (or shows what a re-import would change); ``trialdesk export`` writes a
-trial's plots as a field book, filled in or blank. Exit status: 0 on success, 2 on bad input, with
-the message on standard error and no traceback.
+summary. A field book with ``--location`` (and ``--season``), or several trial files, is analysed
+as a series over environments. ``trialdesk demo`` analyses the bundled demo trial; ``trialdesk
+import`` makes a trial file from a field book (or shows what a re-import would change);
+``trialdesk export`` writes a trial's plots as a field book, filled in or blank. Exit status: 0 on
+success, 2 on bad input, with the message on standard error and no traceback.
 """
 
 from __future__ import annotations
@@ -62,6 +63,20 @@ def _add_analysis_options(parser: argparse.ArgumentParser) -> None:
                         "standard output, instead of the readable summary)")
 
 
+def _add_series_options(parser: argparse.ArgumentParser) -> None:
+    series = parser.add_argument_group(
+        "series over environments (a field book with a location column, or several trial files)")
+    series.add_argument("--location", metavar="COL",
+                        help="column of locations: analyse the field book as a series")
+    series.add_argument("--season", metavar="COL",
+                        help="column of seasons; an environment is a location in a season")
+    # The choices are trialdesk.core.series.COMPONENT_METHODS, written out so that building the
+    # parser does not load the analysis modules.
+    series.add_argument("--variance-components", choices=("auto", "reml"), default="auto",
+                        help="auto: from the ANOVA mean squares when the series is balanced, by "
+                        "REML otherwise (default); reml: always by REML")
+
+
 def _add_report_options(parser: argparse.ArgumentParser) -> None:
     reports = parser.add_argument_group("reports")
     reports.add_argument("--workbook", metavar="PATH",
@@ -111,9 +126,11 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     analyze = sub.add_parser("analyze", help="analyse a field book or a trial file",
                              description="Analyse a trial and print the trial summary.")
-    analyze.add_argument("fieldbook", metavar="FILE",
-                         help="trial file (.trial) or field book: CSV (, ; or tab) or XLSX")
+    analyze.add_argument("fieldbook", metavar="FILE", nargs="+",
+                         help="trial file (.trial) or field book: CSV (, ; or tab) or XLSX; "
+                         "several trial files are analysed as a series, one environment each")
     _add_analysis_options(analyze)
+    _add_series_options(analyze)
     demo = sub.add_parser("demo", help="open the demo trial; with --print, analyse it and print "
                           "the summary instead")
     demo.add_argument("--print", action="store_true",
@@ -251,29 +268,85 @@ def _run(args: argparse.Namespace, pdf_writer: PdfWriter | None = None) -> int:
         return _run_import(args)
     if args.command == "export":
         return _run_export(args)
+    if args.command == "analyze" and _is_series(args):
+        return _run_series(args)
     from trialdesk.core.analysis import analyze
-    from trialdesk.core.atomic import write_atomic
     from trialdesk.core.json_output import analysis_to_json
     from trialdesk.core.summary_text import analysis_text
 
+    if args.command == "analyze":
+        args.fieldbook = args.fieldbook[0]
     book, settings, notes = _book_and_settings(args)
     result = analyze(book, settings, notes=notes)
     written = _write_reports(args, result, book, pdf_writer)
+    return _print_result(args, analysis_to_json(result), analysis_text(result), written)
+
+
+def _print_result(args: argparse.Namespace, json_text: str, summary: str,
+                  written: list[str]) -> int:
+    """The JSON to standard output (``--json -``) or to a file beside the summary."""
+    from trialdesk.core.atomic import write_atomic
+
     if args.json == "-":
-        sys.stdout.write(analysis_to_json(result) + "\n")
+        sys.stdout.write(json_text + "\n")
         for line in written:
             print(line, file=sys.stderr)
         return EXIT_OK
     if args.json:
         try:
-            write_atomic(args.json, analysis_to_json(result) + "\n")
+            write_atomic(args.json, json_text + "\n")
         except OSError as exc:
             raise TrialInputError(f"cannot write the JSON result: {exc.strerror}",
                                   file=args.json) from None
-    sys.stdout.write(analysis_text(result))
+    sys.stdout.write(summary)
     for line in written:
         print(line)
     return EXIT_OK
+
+
+def _is_series(args: argparse.Namespace) -> bool:
+    if args.season and not args.location:
+        raise TrialInputError("--season names the season column of a series: give the location "
+                              "column with --location too", file=args.fieldbook[0])
+    return bool(args.location) or len(args.fieldbook) > 1
+
+
+def _run_series(args: argparse.Namespace) -> int:
+    """``trialdesk analyze`` of a series: one field book with --location, or several trials."""
+    from trialdesk.core.json_output import series_to_json
+    from trialdesk.core.series import analyze_series, read_series, series_from_trials
+    from trialdesk.core.series_text import series_text
+
+    files = args.fieldbook
+    for option, name in ((args.row, "--row"), (args.column, "--column")):
+        if option:
+            raise TrialInputError(f"{name} is not used in a series analysis: leave it out")
+    if args.workbook:
+        raise TrialInputError("the series workbook is not made yet: use --json or the printed "
+                              "summary", file=args.workbook)
+    if args.pdf:
+        raise TrialInputError("the series PDF summary is not made yet: use --json or the printed "
+                              "summary", file=args.pdf)
+    trials = [f for f in files if _is_trial(f)]
+    if args.location:
+        if len(files) > 1 or trials:
+            raise TrialInputError("--location reads the environments of one field book (CSV or "
+                                  "XLSX); trial files are one environment each: give several "
+                                  "without --location", file=(trials or files[1:])[0])
+        data = read_series(files[0], entry=args.entry, location=args.location,
+                           season=args.season, block=args.block, plot=args.plot,
+                           traits=args.trait or None, sheet=args.sheet,
+                           decimal_comma=args.decimal_comma)
+    else:
+        other = next((f for f in files if not _is_trial(f)), None)
+        if other is not None:
+            raise TrialInputError("several files make a series only as trial files (.trial), one "
+                                  "environment each; a field book holding several environments "
+                                  "is given alone, with --location", file=other)
+        data = series_from_trials(files)
+    result = analyze_series(data, _settings_from(args, data.saved_settings),
+                            components=args.variance_components)
+    return _print_result(args, series_to_json(result), series_text(result), [])
 
 
 def _write_reports(args: argparse.Namespace, analysis, book, pdf_writer: PdfWriter | None
