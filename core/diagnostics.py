@@ -54,13 +54,18 @@ def shapiro_wilk(residuals: np.ndarray) -> AssumptionTest:
 
 
 def brown_forsythe(residuals: np.ndarray, entry: np.ndarray) -> AssumptionTest:
-    """Brown-Forsythe test of equal residual variance across entries (entries with 2+ plots)."""
+    """Brown-Forsythe test of equal residual variance across entries (entries with 3+ plots).
+
+    With two plots, both lie equally far from their median, so an entry's spread about the
+    median is always the same for both and the test is degenerate: such entries are left out.
+    """
     groups = [residuals[entry == e] for e in pd.unique(entry)]
-    groups = [g for g in groups if len(g) >= 2]
+    groups = [g for g in groups if len(g) >= 3]
     name = "Equal variances across entries (Brown-Forsythe)"
     if len(groups) < 2:
         return AssumptionTest(name=name, statistic=None, df=None, p=None,
-                              reading="not enough data for this test")
+                              reading="not enough data for this test: it needs entries with "
+                                      "three or more plots")
     n = sum(len(g) for g in groups)
     w, p = stats.levene(*groups, center="median")
     return AssumptionTest(

@@ -15,9 +15,14 @@ names the trial, the page, the analysis date and the Trialdesk version.
 The page turns landscape when the table is too wide for a portrait page, and the text size (8.5
 down to 7 pt for the table, its rows closer at 7.5 and 7 pt) is the largest that keeps the report
 on one page; a trial too long for one page is set in 8 pt and flows on to further pages, each
-with the trial's name, its facts and the table's heading repeated. What does not fit beside or
-below the table moves to the last page. The text is real text, so it can be searched and copied
-from the PDF.
+with the trial's name, its facts and the table's heading repeated. A table too wide for a
+landscape page even in 7 pt is printed in sections of its traits, each as wide as the page
+allows: the first section for every entry, page after page, then the next, each with the ranks
+and the entries (the percent of the checks in the main trait's section), its own statistics
+under it, and "Traits 1–4 of 8" in the head of its pages. Grouping letters too long for a page
+even in a section of their own run on to further lines within their row. Nothing is cut at the
+margin, and no text is smaller than 6.5 pt. What does not fit beside or below the table moves
+to the last page. The text is real text, so it can be searched and copied from the PDF.
 """
 
 from __future__ import annotations
@@ -27,8 +32,10 @@ import os
 import re
 import sys
 import tempfile
+from bisect import bisect_right
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from itertools import accumulate
 from pathlib import Path
 
 from PySide6.QtCore import QMarginsF, QPointF, QRectF, Qt
@@ -49,7 +56,7 @@ from PySide6.QtGui import (
 )
 
 from trialdesk.core.errors import TrialInputError
-from trialdesk.core.report import ReportColumn, ReportRow, TrialReport
+from trialdesk.core.report import ReportColumn, TrialReport
 from trialdesk.core.version import VERSION
 from trialdesk.desktop.palette import (
     ABOVE,
@@ -89,6 +96,8 @@ BOTTOM_LABELS = ("Grand mean", "CV %", "Critical difference", "Entry F-test p")
 CHECK_KEY = "Shaded rows are the checks."
 
 _HEX_RUN = re.compile(r"\b([0-9a-fA-F]{12})[0-9a-fA-F]{20,}\b")
+# One grouping letter: a Latin letter and its cycle number, if any (trialdesk.core.letters).
+_LETTER = re.compile(r"[A-Za-z]\d*|.")
 
 Draw = Callable[[QPainter], None]
 
@@ -198,6 +207,31 @@ class _Style:
         layout.endLayout()
         return lines or [""]
 
+    def wrap_letters(self, font: QFont, text: str, width: float) -> list[str]:
+        """Grouping letters broken into lines no wider than ``width``, between letters (never
+        between a letter and its cycle number: "a1" stays whole)."""
+        metrics = self.metrics(font)
+        if metrics.horizontalAdvance(text) <= width:
+            return [text]
+        letters = _LETTER.findall(text)
+        advance = {letter: metrics.horizontalAdvance(letter) for letter in set(letters)}
+        lines: list[list[str]] = [[]]
+        used = 0.0
+        for letter in letters:  # by the letters' own advances first ...
+            if lines[-1] and used + advance[letter] > width:
+                lines.append([])
+                used = 0.0
+            lines[-1].append(letter)
+            used += advance[letter]
+        k = 0
+        while k < len(lines):  # ... then each line measured whole (kerning), the excess carried
+            while len(lines[k]) > 1 and metrics.horizontalAdvance("".join(lines[k])) > width:
+                if k + 1 == len(lines):
+                    lines.append([])
+                lines[k + 1].insert(0, lines[k].pop())
+            k += 1
+        return ["".join(line) for line in lines]
+
     def pen(self, color: QColor, points: float,
             style: Qt.PenStyle = Qt.PenStyle.SolidLine) -> QPen:
         pen = QPen(color)
@@ -267,10 +301,14 @@ class _Header:
                    for r in range(n_rows)]
         return grid, heights
 
-    def draw(self, painter: QPainter) -> None:
+    def draw(self, painter: QPainter, label: str = "") -> None:
+        """Draw the head, ``label`` (which traits of the table the page holds) right of the
+        name."""
         s = self.style
-        s.draw_text(painter, s.title, QRectF(0, 0, self.width, self.title_h),
-                    s.elide(s.title, self.report.title, self.width))
+        box = QRectF(0, 0, self.width, self.title_h)
+        room = self.width - (s.width(s.running, label) + s.mm(6.0) if label else 0.0)
+        s.draw_text(painter, s.title, box, s.elide(s.title, self.report.title, room))
+        s.draw_text(painter, s.running, box, label, RIGHT_FLAGS, ACCENT)
         top = self.title_h + s.mm(1.5)
         for x, label_w, value_w, cells in self.columns:
             y = top
@@ -288,15 +326,20 @@ class _RunningHead:
     def __init__(self, report: TrialReport, style: _Style, width: float) -> None:
         s = self.style = style
         self.width = width
-        self.title = s.elide(s.running, report.title, width)
+        self.report = report
         facts = "  \u00b7  ".join(f"{label} {_short(value)}" for label, value in report.header
                                   if value != report.title)
         self.facts = s.elide(s.note, facts, width)
         self.height = s.line(s.running) + s.line(s.note) + s.mm(1.0) + s.mm(GAP_MM)
 
-    def draw(self, painter: QPainter) -> None:
+    def draw(self, painter: QPainter, label: str = "") -> None:
+        """Draw the head, ``label`` (which traits of the table the page holds) right of the
+        name."""
         s = self.style
-        s.draw_text(painter, s.running, QRectF(0, 0, self.width, s.line(s.running)), self.title)
+        box = QRectF(0, 0, self.width, s.line(s.running))
+        room = self.width - (s.width(s.running, label) + s.mm(6.0) if label else 0.0)
+        s.draw_text(painter, s.running, box, s.elide(s.running, self.report.title, room))
+        s.draw_text(painter, s.running, box, label, RIGHT_FLAGS, ACCENT)
         y = s.line(s.running)
         s.draw_text(painter, s.note, QRectF(0, y, self.width, s.line(s.note)), self.facts)
         s.rule(painter, 0, self.width, y + s.line(s.note) + s.mm(0.8), points=0.8)
@@ -324,6 +367,26 @@ class _Footer:
         s.draw_text(painter, s.footer, box, self.right, RIGHT_FLAGS)
 
 
+class _Texts:
+    """The table's texts, the same in every type and on every page: made once for a report."""
+
+    def __init__(self, report: TrialReport) -> None:
+        rows, columns = report.rows, report.columns
+        self.ranks = [str(r.rank) for r in rows]
+        self.entries = [r.entry for r in rows]
+        self.names = [r.name for r in rows]
+        self.percents = [_fixed(r.percent_of_check, 1) for r in rows]
+        self.means = [[_fixed(r.means[j], c.decimals) for r in rows]
+                      for j, c in enumerate(columns)]
+        self.letters = [[r.letters[j] for r in rows] for j in range(len(columns))]
+        self.marks = [[r.marks[j] for r in rows] for j in range(len(columns))]
+        self.bottom = [dict(zip(BOTTOM_LABELS, (
+            _fixed(c.grand_mean, c.decimals), _fixed(c.cv_percent, 1),
+            _fixed(c.critical_difference, c.decimals), _p_text(c.entry_p)), strict=True))
+            for c in columns]
+        self.main = next((j for j, c in enumerate(columns) if c.trait == report.main_trait), 0)
+
+
 @dataclass
 class _Group:
     """One trait's columns in the table: mean, grouping letters, marks against the checks."""
@@ -337,52 +400,69 @@ class _Group:
     width: float
     title: list[str]
     name_inline: bool  # the critical difference's name fits beside its number
+    lines: list[list[str]] | None = None  # each row's letters line by line, where they wrap
 
 
 class _Table:
-    """The all-traits table: its heading, the entry rows and the statistics under them."""
+    """The all-traits table, or one section of its traits: its heading, the entry rows and the
+    statistics under them.
 
-    def __init__(self, report: TrialReport, style: _Style) -> None:
+    ``traits`` are the indices of the report's columns printed (all of them when None), the
+    percent of the checks after them when the main trait is among them. A trait too wide for
+    ``room`` beside the ranks and the entries has its letters wrapped to fit, its rows growing.
+    ``measures`` are every trait's widths (:meth:`_measure`) when another table in the same
+    style has them already.
+    """
+
+    def __init__(self, report: TrialReport, style: _Style, texts: _Texts,
+                 traits: Sequence[int] | None = None, *, room: float = math.inf,
+                 measures: list[tuple[float, float, float, float]] | None = None) -> None:
         s = self.style = style
         self.report = report
+        self.texts = texts
         pad = self.pad = s.mm(0.8)
         rows = report.rows
         self.row_h = s.line(s.text) + s.mm(s.lead)
-        self.rank_w = max(s.width(s.bold, "Rank"),
-                          s.widest(s.text, [str(r.rank) for r in rows])) + 2 * pad
-        entry_w = max(s.width(s.bold, "Entry"), s.widest(s.text, [r.entry for r in rows]))
+        self.rank_w = max(s.width(s.bold, "Rank"), s.widest(s.text, texts.ranks)) + 2 * pad
+        entry_w = max(s.width(s.bold, "Entry"), s.widest(s.text, texts.entries))
         self.entry_w = entry_w + 2 * pad
-        self.has_names = any(r.name for r in rows)
+        self.has_names = any(texts.names)
         self.name_w = 0.0
         if self.has_names:
-            names = max(s.width(s.bold, "Name"), s.widest(s.text, [r.name for r in rows]))
+            names = max(s.width(s.bold, "Name"), s.widest(s.text, texts.names))
             self.name_w = min(names, s.mm(NAME_MM)) + 2 * pad
-        measures = [self._measure(column, index) for index, column in enumerate(report.columns)]
+        # Every trait is measured, so that the sections of the traits decide alike where the
+        # critical difference is named.
+        self.measures = measures or [self._measure(index) for index in range(len(report.columns))]
         # One critical difference for every trait whose name is wider than a trait's numbers
         # (Dunnett's) is named once, under the row's label, rather than widen every trait.
         names = {column.critical_name for column in report.columns}
         self.shared_name = ""
         if len(report.columns) > 1 and len(names) == 1:
             name = names.pop()
-            if any(s.width(s.small, name) + 2 * pad > measure[-1] for measure in measures):
+            if any(s.width(s.small, name) + 2 * pad > measure[-1] for measure in self.measures):
                 self.shared_name = name
         labels = max(s.widest(s.text, BOTTOM_LABELS), s.width(s.small, self.shared_name)) + 2 * pad
         self.entry_w += max(0.0, labels - (self.rank_w + self.entry_w + self.name_w))
-        x = self.rank_w + self.entry_w + self.name_w
-        self.groups = []
-        for index, (column, measure) in enumerate(zip(report.columns, measures, strict=True)):
-            group = self._group(column, index, x, measure)
-            self.groups.append(group)
-            x += group.width
-        self.percent_left = x
-        self.has_percent = any(r.percent_of_check is not None for r in rows)
+        fixed = self.rank_w + self.entry_w + self.name_w
+        self.traits = list(range(len(report.columns)) if traits is None else traits)
+        self.has_percent = (texts.main in self.traits
+                            and any(r.percent_of_check is not None for r in rows))
         self.percent_w = 0.0
         self.percent_title = ["% of checks"]
         if self.has_percent:
-            numbers = s.widest(s.text, [_fixed(r.percent_of_check, 1) for r in rows])
+            numbers = s.widest(s.text, texts.percents)
             if s.width(s.bold, self.percent_title[0]) > numbers:
                 self.percent_title = ["% of", "checks"]  # on two lines, as narrow as the numbers
             self.percent_w = max(numbers, s.widest(s.bold, self.percent_title)) + 2 * pad
+        x = fixed
+        self.groups = []
+        for index in self.traits:
+            limit = room - fixed - (self.percent_w if index == texts.main else 0.0)
+            group = self._group(index, x, self.measures[index], limit)
+            self.groups.append(group)
+            x += group.width
+        self.percent_left = x
         self.width = x + self.percent_w
         self.title_lines = max([len(g.title) for g in self.groups]
                                + [len(self.percent_title) - 1 if self.has_percent else 1, 1])
@@ -395,31 +475,44 @@ class _Table:
         self.bottom_h = (len(BOTTOM_LABELS) * self.row_h + s.mm(0.6)
                          + (s.line(s.small) if self.name_below else 0.0)
                          + (s.line(s.small) + s.mm(0.6) if self.has_checks else 0.0))
+        self.heights = [self.row_h] * len(rows)  # each row's, taller where letters wrap
+        for group in self.groups:
+            for k, lines in enumerate(group.lines or ()):
+                self.heights[k] = max(self.heights[k],
+                                      self.row_h + (len(lines) - 1) * s.line(s.text))
+        self.tops = list(accumulate(self.heights, initial=0.0))  # row k from tops[k]
 
-    def _measure(self, column: ReportColumn, index: int) -> tuple[float, float, float, float]:
+    def _content(self, mean_w: float, letters_w: float, mark_w: float) -> float:
+        """The width of a trait's numbers, letters and marks with the padding."""
+        pad = self.pad
+        return (2 * pad + mean_w + (0.8 * pad + letters_w if letters_w else 0.0)
+                + (0.8 * pad + mark_w if mark_w else 0.0))
+
+    def _measure(self, index: int) -> tuple[float, float, float, float]:
         """The widths a trait's numbers, letters and marks need, and their total with the
         padding: (mean, letters, marks, content)."""
-        s, pad = self.style, self.pad
-        d = column.decimals
-        numbers = [_fixed(r.means[index], d) for r in self.report.rows] + [
-            _fixed(column.grand_mean, d), _fixed(column.cv_percent, 1),
-            _fixed(column.critical_difference, d), _p_text(column.entry_p)]
+        s, texts = self.style, self.texts
+        numbers = [*texts.means[index], *texts.bottom[index].values()]
         mean_w = max(s.widest(s.text, numbers), s.width(s.small, "mean"))
         letters_w = 0.0
-        if column.has_letters:
-            letters_w = max(s.widest(s.text, [r.letters[index] for r in self.report.rows]),
-                            s.width(s.small, "letters"))
-        mark_w = s.widest(s.text, [r.marks[index] for r in self.report.rows])
-        content = (2 * pad + mean_w + (0.8 * pad + letters_w if letters_w else 0.0)
-                   + (0.8 * pad + mark_w if mark_w else 0.0))
-        return mean_w, letters_w, mark_w, content
+        if self.report.columns[index].has_letters:
+            letters_w = max(s.widest(s.text, texts.letters[index]), s.width(s.small, "letters"))
+        mark_w = s.widest(s.text, texts.marks[index])
+        return mean_w, letters_w, mark_w, self._content(mean_w, letters_w, mark_w)
 
-    def _group(self, column: ReportColumn, index: int, left: float,
-               measure: tuple[float, float, float, float]) -> _Group:
+    def _group(self, index: int, left: float, measure: tuple[float, float, float, float],
+               limit: float) -> _Group:
         """The trait's columns from ``left``, as wide as ``measure`` (:meth:`_measure`), its
-        title and the name of its critical difference need."""
+        title and the name of its critical difference need; its letters wrapped where they
+        would make it wider than ``limit``."""
         s, pad = self.style, self.pad
+        column = self.report.columns[index]
         mean_w, letters_w, mark_w, content = measure
+        lines = None
+        if content > limit and letters_w:
+            letters_w = max(letters_w - (content - limit), s.width(s.small, "letters"))
+            content = self._content(mean_w, letters_w, mark_w)
+            lines = [s.wrap_letters(s.text, text, letters_w) for text in self.texts.letters[index]]
         name_w = 0.0 if self.shared_name else s.width(s.small, column.critical_name)
         # The trait on the first line, its unit and direction under it when they do not fit.
         rest = column.title[len(column.trait):].strip()
@@ -434,7 +527,17 @@ class _Table:
         beside = width - 2.8 * pad - mean_w  # the room right of the numbers
         return _Group(column=column, index=index, left=left, mean_w=mean_w,
                       letters_w=letters_w, mark_w=mark_w, width=width, title=title,
-                      name_inline=name_w <= beside)
+                      name_inline=name_w <= beside, lines=lines)
+
+    def label(self, *, continued: bool) -> str:
+        """Which traits the table holds, "Traits 1–4 of 8" (", continued" on its later pages)."""
+        first, last = self.traits[0] + 1, self.traits[-1] + 1
+        which = f"Trait {first}" if first == last else f"Traits {first}\u2013{last}"
+        return f"{which} of {len(self.report.columns)}" + (", continued" if continued else "")
+
+    def rows_fitting(self, start: int, room: float) -> int:
+        """How many rows from row ``start`` (from 0) fit in ``room``."""
+        return bisect_right(self.tops, self.tops[start] + room) - 1 - start
 
     # Each part of the table is drawn with its top at ``y`` and its left edge at 0.
 
@@ -481,42 +584,46 @@ class _Table:
         self._separators(painter, y + pad, y + self.head_h)
         s.rule(painter, 0, self.width, y + self.head_h, points=0.5)
 
-    def draw_rows(self, painter: QPainter, y: float, rows: Sequence[ReportRow],
-                  first: int) -> None:
-        """Draw ``rows``, the first of which is row ``first`` (from 0) of the whole table."""
-        s, pad, h = self.style, self.pad, self.row_h
+    def draw_rows(self, painter: QPainter, y: float, first: int, stop: int) -> None:
+        """Draw rows ``first`` to ``stop`` (from 0, ``stop`` not included)."""
+        s, pad, h, texts = self.style, self.pad, self.row_h, self.texts
         top = y
-        for k, row in enumerate(rows):
-            if row.is_check:
-                painter.fillRect(QRectF(0, y, self.width, h), CHECK_BG)
+        for k in range(first, stop):
+            height = self.heights[k]
+            if self.report.rows[k].is_check:
+                painter.fillRect(QRectF(0, y, self.width, height), CHECK_BG)
             cell = QRectF(pad, y, self.rank_w - 2 * pad, h)
-            s.draw_text(painter, s.text, cell, str(row.rank), RIGHT_FLAGS)
+            s.draw_text(painter, s.text, cell, texts.ranks[k], RIGHT_FLAGS)
             cell = QRectF(self.rank_w + pad, y, self.entry_w - 2 * pad, h)
-            s.draw_text(painter, s.text, cell, row.entry)
+            s.draw_text(painter, s.text, cell, texts.entries[k])
             if self.has_names:
                 cell = QRectF(self.rank_w + self.entry_w + pad, y, self.name_w - 2 * pad, h)
-                s.draw_text(painter, s.text, cell, s.elide(s.text, row.name, cell.width()))
+                s.draw_text(painter, s.text, cell, s.elide(s.text, texts.names[k], cell.width()))
             for group in self.groups:
-                self._draw_trait(painter, group, row, y)
+                self._draw_trait(painter, group, k, y)
             if self.has_percent:
                 cell = QRectF(self.percent_left + pad, y, self.percent_w - 2 * pad, h)
-                s.draw_text(painter, s.text, cell, _fixed(row.percent_of_check, 1), RIGHT_FLAGS)
-            y += h
-            if (first + k + 1) % 5 == 0 and k + 1 < len(rows):
+                s.draw_text(painter, s.text, cell, texts.percents[k], RIGHT_FLAGS)
+            y += height
+            if (k + 1) % 5 == 0 and k + 1 < stop:
                 s.rule(painter, 0, self.width, y, _faded(ACCENT, 90), points=0.3)
         self._separators(painter, top, y)
 
-    def _draw_trait(self, painter: QPainter, group: _Group, row: ReportRow, y: float) -> None:
-        s, pad, h = self.style, self.pad, self.row_h
+    def _draw_trait(self, painter: QPainter, group: _Group, k: int, y: float) -> None:
+        """Draw the trait's cells of row ``k``, the letters line under line where they wrap."""
+        s, pad, h, texts = self.style, self.pad, self.row_h, self.texts
         j = group.index
         x = group.left + pad
-        s.draw_text(painter, s.text, QRectF(x, y, group.mean_w, h),
-                    _fixed(row.means[j], group.column.decimals), RIGHT_FLAGS)
+        s.draw_text(painter, s.text, QRectF(x, y, group.mean_w, h), texts.means[j][k],
+                    RIGHT_FLAGS)
         x += group.mean_w + 0.8 * pad
         if group.letters_w:
-            s.draw_text(painter, s.text, QRectF(x, y, group.letters_w, h), row.letters[j])
+            lines = group.lines[k] if group.lines else [texts.letters[j][k]]
+            for n, text in enumerate(lines):
+                s.draw_text(painter, s.text,
+                            QRectF(x, y + n * s.line(s.text), group.letters_w, h), text)
             x += group.letters_w + 0.8 * pad
-        for mark in row.marks[j]:
+        for mark in texts.marks[j][k]:
             color = ABOVE if mark == ABOVE_MARK else BELOW if mark == BELOW_MARK else BLACK
             s.draw_text(painter, s.text, QRectF(x, y, group.mark_w, h), mark, color=color)
             x += s.width(s.text, mark)
@@ -530,13 +637,9 @@ class _Table:
         for label in BOTTOM_LABELS:
             s.draw_text(painter, s.text, QRectF(pad, y, label_w, h), label)
             for group in self.groups:
-                column, d = group.column, group.column.decimals
-                number = {"Grand mean": _fixed(column.grand_mean, d),
-                          "CV %": _fixed(column.cv_percent, 1),
-                          "Critical difference": _fixed(column.critical_difference, d),
-                          "Entry F-test p": _p_text(column.entry_p)}[label]
+                column = group.column
                 s.draw_text(painter, s.text, QRectF(group.left + pad, y, group.mean_w, h),
-                            number, RIGHT_FLAGS)
+                            self.texts.bottom[group.index][label], RIGHT_FLAGS)
                 if label == "Critical difference" and not self.name_below:
                     x = group.left + 1.8 * pad + group.mean_w
                     s.draw_text(painter, s.small, QRectF(x, y, group.left + group.width - x, h),
@@ -556,6 +659,37 @@ class _Table:
             painter.fillRect(QRectF(pad, key.top() + small_h * 0.2, small_h * 1.2, small_h * 0.6),
                              CHECK_BG)
             s.draw_text(painter, s.small, key.adjusted(pad + small_h * 1.6, 0, 0, 0), CHECK_KEY)
+
+
+def _sections(table: _Table, room: float) -> list[_Table]:
+    """The traits of ``table`` (all of them) in sections no wider than ``room``, in their
+    order: as few sections as may be, and among those the split whose widest section is the
+    narrowest, so that they come out about as wide. A trait too wide for a section of its own
+    has its letters wrapped (:class:`_Table`)."""
+    fixed = table.rank_w + table.entry_w + table.name_w
+    main = table.texts.main
+    widths = [min(g.width + (table.percent_w if g.index == main else 0.0), room - fixed)
+              for g in table.groups]
+
+    def split(limit: float) -> list[list[int]]:
+        """The traits, section after section, each filled up to ``limit``."""
+        sections: list[list[int]] = [[]]
+        used = 0.0
+        for index, width in enumerate(widths):
+            if sections[-1] and used + width > limit:
+                sections.append([])
+                used = 0.0
+            sections[-1].append(index)
+            used += width
+        return sections
+
+    fewest = len(split(room - fixed))
+    # The widest section of the best split is as wide as some run of traits side by side.
+    runs = sorted({sum(widths[i:j]) for i in range(len(widths))
+                   for j in range(i + 1, len(widths) + 1)})
+    limit = next(run for run in runs if len(split(run)) == fewest)
+    return [_Table(table.report, table.style, table.texts, traits, room=room,
+                   measures=table.measures) for traits in split(limit)]
 
 
 class _Chart:
@@ -837,11 +971,15 @@ class _Notes:
         self.footnotes = _footnotes(report)
         self.cautions = report.cautions
         self.pad = style.mm(2.0)
+        self._heights: dict[tuple[int, float], float] = {}  # each layout tried asks again
 
     def paragraph_height(self, index: int, width: float) -> float:
-        s = self.style
-        lines = s.wrap(s.note, self.footnotes[index], width)
-        return len(lines) * s.line(s.note) + (s.line(s.note_bold) if index == 0 else 0.0)
+        if (index, width) not in self._heights:
+            s = self.style
+            lines = s.wrap(s.note, self.footnotes[index], width)
+            self._heights[index, width] = (len(lines) * s.line(s.note)
+                                           + (s.line(s.note_bold) if index == 0 else 0.0))
+        return self._heights[index, width]
 
     def draw_paragraph(self, painter: QPainter, index: int, rect: QRectF) -> None:
         s = self.style
@@ -894,13 +1032,13 @@ class _Item:
 class _Parts:
     """The blocks of the report measured for one text size and page width."""
 
-    def __init__(self, report: TrialReport, style: _Style, table: _Table, width: float,
+    def __init__(self, report: TrialReport, style: _Style, tables: list[_Table], width: float,
                  height: float) -> None:
         self.report = report
         self.style = style
         self.width = width
         self.height = height
-        self.table = table
+        self.tables = tables  # the whole table, or its sections of traits one after another
         self.header = _Header(report, style, width)
         self.running = _RunningHead(report, style, width)
         self.chart = _Chart(report, style)
@@ -936,47 +1074,52 @@ class _Plan:
 
 
 def _lay_out(plan: _Plan) -> _Plan:
-    """Fill ``plan.pages``: the table page by page, then the chart, notes and cautions."""
+    """Fill ``plan.pages``: the table page by page (a table in sections section after section,
+    each from a new page), then the chart, notes and cautions."""
     parts = plan.parts
     s, width, report = parts.style, parts.width, parts.report
-    table, chart, notes = parts.table, parts.chart, parts.notes
+    chart, notes = parts.chart, parts.notes
     pages = plan.pages
     bottom = parts.height - s.mm(FOOTER_MM)
     gap = s.mm(GAP_MM)
 
-    def new_page() -> float:
+    def new_page(label: str = "") -> float:
         head = parts.running if pages else parts.header
-        pages.append([head.draw])
+        pages.append([lambda p, head=head: head.draw(p, label)])
         return head.height
 
     areas: list[_Area] = []
-    side = width - table.width - gap
-    rows, start = report.rows, 0
-    while True:
-        y = new_page()
-        page = len(pages) - 1
-        room = bottom - y - table.head_h
-        left = len(rows) - start
-        last = left * table.row_h + table.bottom_h <= room
-        take = left if last else min(int(room // table.row_h), left - 1)
-        if take <= 0:  # not even one row and the statistics fit a page: print them anyway
-            take, last = left, True
-        chunk, first = rows[start:start + take], start
-        pages[page].append(lambda p, y=y: table.draw_head(p, y))
-        pages[page].append(lambda p, y=y + table.head_h, chunk=chunk, first=first:
-                           table.draw_rows(p, y, chunk, first))
-        end = y + table.head_h + take * table.row_h
-        start += take
-        beside = None
-        if side >= s.mm(SIDE_MM) and not plan.side:
-            beside = _Area(page, QRectF(table.width + gap, y, side, bottom - y), y)
-            areas.append(beside)
-        if last:
-            plan.table_pages = len(pages)
-            pages[page].append(lambda p, y=end: table.draw_bottom(p, y))
-            end += table.bottom_h + gap
-            areas.append(_Area(page, QRectF(0, end, width, bottom - end), end, after=beside))
-            break
+    sections = len(parts.tables) > 1  # each section of the traits from a page of its own
+    n_rows = len(report.rows)
+    for table in parts.tables:
+        side = width - table.width - gap
+        start = 0
+        while True:
+            y = new_page(table.label(continued=start > 0) if sections else "")
+            page = len(pages) - 1
+            room = bottom - y - table.head_h
+            left = n_rows - start
+            last = table.tops[-1] - table.tops[start] + table.bottom_h <= room
+            take = left if last else min(table.rows_fitting(start, room), left - 1)
+            if take <= 0:  # not even one row and the statistics fit a page: print them anyway
+                take, last = left, True
+            stop = start + take
+            pages[page].append(lambda p, y=y, table=table: table.draw_head(p, y))
+            pages[page].append(lambda p, y=y + table.head_h, table=table, first=start,
+                               stop=stop: table.draw_rows(p, y, first, stop))
+            end = y + table.head_h + table.tops[stop] - table.tops[start]
+            start = stop
+            beside = None
+            # Beside the table (or its last section: the others would part the sections).
+            if side >= s.mm(SIDE_MM) and not plan.side and table is parts.tables[-1]:
+                beside = _Area(page, QRectF(table.width + gap, y, side, bottom - y), y)
+                areas.append(beside)
+            if last:
+                pages[page].append(lambda p, y=end, table=table: table.draw_bottom(p, y))
+                end += table.bottom_h + gap
+                break
+    plan.table_pages = len(pages)
+    areas.append(_Area(len(pages) - 1, QRectF(0, end, width, bottom - end), end, after=beside))
 
     def across(width: float) -> bool:
         return width >= s.mm(WIDE_CHART_MM)
@@ -1071,23 +1214,27 @@ def _best_plan(report: TrialReport, device: QPagedPaintDevice,
     permits, with the notes and the cautions together on as few pages as may be. With each, the
     chart comes straight after the table when it fits there (else after the cautions), as tall
     as the page allows; where only that keeps the report on one page, or on fewer pages, it
-    stands at the left under the table with the notes and the cautions beside it.
+    stands at the left under the table with the notes and the cautions beside it. A table too
+    wide for the widest page in every type is set in sections of its traits (:func:`_sections`),
+    in each type, and the same rules choose among those.
     """
     dpi = device.logicalDpiY()
-    types: list[tuple[float, float]] = list(TABLE_TYPES)
+    texts = _Texts(report)
     fitting: list[tuple[QPageLayout, _Parts]] = []  # where the table fits across the page
-    while not fitting:
-        for layout in layouts:
-            rect = layout.paintRectPixels(dpi)
-            for size, lead in types:
-                style = _Style(device, size, lead)
-                table = _Table(report, style)
-                # The last resort, a table too wide at any size, is printed cut at the margin.
-                if table.width <= rect.width() or size <= 3.0 and layout is layouts[-1]:
-                    fitting.append((layout, _Parts(report, style, table, rect.width(),
-                                                   rect.height())))
-        size, lead = types[-1]
-        types = [(size - 0.5, lead)]  # a very wide table: smaller type until it fits
+    widest: list[_Table] = []  # the table in each type, on the widest page
+    for layout in layouts:
+        rect = layout.paintRectPixels(dpi)
+        for size, lead in TABLE_TYPES:
+            table = _Table(report, _Style(device, size, lead), texts)
+            if table.width <= rect.width():
+                fitting.append((layout, _Parts(report, table.style, [table], rect.width(),
+                                               rect.height())))
+            if layout is layouts[-1]:
+                widest.append(table)
+    if not fitting:  # too wide in any type: its traits in sections across the widest page
+        rect = layouts[-1].paintRectPixels(dpi)
+        fitting = [(layouts[-1], _Parts(report, table.style, _sections(table, rect.width()),
+                                        rect.width(), rect.height())) for table in widest]
     upright = [parts.style.size for layout, parts in fitting
                if layout.orientation() == QPageLayout.Orientation.Portrait]
     portrait = bool(upright) and (max(upright) >= PORTRAIT_SIZE or len(upright) == len(fitting))

@@ -10,12 +10,15 @@ tests/output/screenshots/ with ``pdftoppm``.
 
 from __future__ import annotations
 
+import html
+import itertools
 import os
 import re
 import shutil
+import string
 import subprocess
 import sys
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -69,14 +72,54 @@ def page_count(path: Path) -> int:
     return int(pdf_info(path)["Pages"])
 
 
-def picture(path: Path, name: str, page: int = 1) -> Path:
-    """Page ``page`` of the PDF as tests/output/screenshots/<name>.png, at 80 dpi."""
+def picture(path: Path, name: str, page: int = 1, dpi: int = 80) -> Path:
+    """Page ``page`` of the PDF as tests/output/screenshots/<name>.png, at ``dpi``."""
     SHOTS.mkdir(parents=True, exist_ok=True)
-    poppler("pdftoppm", "-r", "80", "-png", "-f", str(page), "-l", str(page), "-singlefile",
+    poppler("pdftoppm", "-r", str(dpi), "-png", "-f", str(page), "-l", str(page), "-singlefile",
             str(path), str(SHOTS / name))
     target = SHOTS / f"{name}.png"
     assert target.stat().st_size > 0
     return target
+
+
+@dataclass(frozen=True)
+class Word:
+    """One word of a PDF page and its box, in points from the page's top left corner."""
+
+    text: str
+    left: float
+    top: float
+    right: float
+    bottom: float
+
+
+def page_words(path: Path) -> list[tuple[float, list[Word]]]:
+    """Each page's width and words, as ``pdftotext -bbox`` finds them."""
+    pages = []
+    for page in poppler("pdftotext", "-bbox", str(path), "-").split("<page ")[1:]:
+        width = float(re.search(r'width="([\d.]+)"', page).group(1))
+        words = [Word(html.unescape(text), *map(float, box)) for *box, text in re.findall(
+            r'<word xMin="([\d.]+)" yMin="([\d.]+)" xMax="([\d.]+)" yMax="([\d.]+)">([^<]*)<',
+            page)]
+        pages.append((width, words))
+    return pages
+
+
+def assert_within_the_margins_and_readable(path: Path) -> None:
+    """No word of any page past the 12 mm side margins, none set smaller than 6.5 pt."""
+    margin = 12.0 / 25.4 * 72.0  # the report's margins, in points
+    for number, (width, words) in enumerate(page_words(path), start=1):
+        assert words, number
+        # 1 pt: poppler's boxes are the glyphs' advances, which may reach a hair past the ink.
+        outside = [w for w in words if w.right > width - margin + 1.0 or w.left < margin - 1.0]
+        assert not outside, (number, outside[:5])
+        # A word's box is as tall as the face's ascent and descent: 1.16 em for DejaVu Sans, the
+        # face embedded here (pdffonts), so 7.54 pt for the 6.5 pt footer (measured) and 6.98 pt
+        # for 6 pt type. 7 pt also passes 6.5 pt type in the other common sans faces (from
+        # memory: ascent and descent 1.12 em in Liberation Sans and Arial, 1.36 em in Noto Sans).
+        # Words turned up (the chart's entry codes) are as tall as they are long, taller still.
+        small = [w for w in words if w.bottom - w.top < 7.0]
+        assert not small, (number, small[:5])
 
 
 def entry_line(text: str, entry: str) -> str:
@@ -116,7 +159,7 @@ def invented_book(folder: Path, n_entries: int, n_blocks: int, traits: dict[str,
     rows = []
     for block in range(1, n_blocks + 1):
         for k, index in enumerate(rng.permutation(n_entries)):
-            row = {"plot": 100 * block + k + 1, "block": block, "entry": codes[index]}
+            row = {"plot": 1000 * block + k + 1, "block": block, "entry": codes[index]}
             for trait, (mean, _, error) in traits.items():
                 row[trait] = round(mean + effects[trait][index] + rng.normal(0, error), 2)
             rows.append(row)
@@ -313,6 +356,79 @@ def test_eight_traits_turn_the_page(qapp, tmp_path):
     assert CAUTIONS.split(". ")[0] + "." in last
     if count == 2:
         picture(path, "report-wide-page2", page=2)
+
+
+def test_a_table_too_wide_for_the_page_prints_in_sections_of_traits(qapp, tmp_path):
+    # An early-generation trial: 150 entries in two blocks, so Tukey's HSD is wide and many
+    # entries hold 20 to 30 grouping letters; 8 traits of these do not fit across a landscape
+    # page even in 7 pt.
+    traits = {f"trait_{k}": (50.0 + 5 * k, 3.0, 1.5) for k in range(1, 9)}
+    book, codes = invented_book(tmp_path, 150, 2, traits)
+    analysis = analyze(book, AnalysisSettings(method="tukey", checks=("N001", "N002")))
+    report = build_report(analysis, book, facts={"name": "Invented early-generation trial"})
+    assert max(len(letters) for row in report.rows for letters in row.letters) >= 25
+    path = write_pdf(report, tmp_path / "sections.pdf")
+
+    assert pdf_info(path)["Page size"].startswith("842 x 595")  # A4 landscape, in points
+    assert_within_the_margins_and_readable(path)
+    count = page_count(path)
+    sections: dict[str, dict[str, set[str]]] = {}  # "Traits 1–4": its headings, its entries
+    for page in range(1, count + 1):
+        text = pdf_text(path, page)
+        assert f"Page {page} of {count}" in text
+        label = re.search(r"(Traits? \d+(?:\u2013\d+)?) of 8(, continued)?", text)
+        if label is None:  # a page after the table's
+            continue
+        section = sections.setdefault(label.group(1), {"traits": set(), "entries": set()})
+        assert bool(label.group(2)) == (section["entries"] != set())  # "continued" after the first
+        traits_line, columns_line = table_heading(text)
+        section["traits"] |= set(traits_line.split()) & set(traits)
+        section["entries"] |= set(re.findall(r"^\s*\d+\s+(N\d{3})\b", text, flags=re.MULTILINE))
+        # The percent of the checks beside the main trait only, in the first section.
+        assert ("checks" in columns_line) == (label.group(1) == "Traits 1\u20134"), page
+    picture(path, "report-sections-page1", dpi=70)
+    second = next(page for page in range(1, count + 1) if "Traits 5" in pdf_text(path, page))
+    picture(path, "report-sections-second", page=second, dpi=70)
+
+    assert "Traits 1\u20134 of 8" in pdf_text(path, 1)
+    assert len(sections) >= 2
+    # Every trait heads a column of one section, and every section lists every entry.
+    assert sorted(t for section in sections.values() for t in section["traits"]) == sorted(traits)
+    for name, section in sections.items():
+        assert section["entries"] == set(codes), name
+    # Each section closes with its traits' statistics.
+    whole = pdf_text(path)
+    assert len(re.findall(r"^\s*Grand mean\b", whole, flags=re.MULTILINE)) == len(sections)
+    words = flowing(pdf_text(path, layout=False))
+    assert "Ranked means of trait_1" in words
+    assert "Critical differences: HSD 0.05 for every trait" in words
+    assert CAUTIONS.split(". ")[0] + "." in words
+
+
+def test_letters_too_long_for_a_page_wrap_within_their_row(qapp, demo, tmp_path):
+    # 156 letters (a to Z, a1 to Z1, a2 to Z2) for three entries' grain yield, wider than a
+    # landscape page: the letters run on to further lines in their row, the type as it was.
+    letters = "".join(f"{c}{cycle or ''}" for cycle in range(3) for c in string.ascii_letters)
+    rows = list(demo.rows)
+    wrapped = [rows[k].entry for k in (3, 4, 10)]  # the 5th is a check
+    for k in (3, 4, 10):
+        rows[k] = replace(rows[k], letters=(letters, *rows[k].letters[1:]))
+    path = write_pdf(replace(demo, rows=tuple(rows)), tmp_path / "wrapped.pdf")
+    picture(path, "report-wrapped-letters", dpi=70)
+
+    assert_within_the_margins_and_readable(path)
+    text = pdf_text(path, 1)
+    assert "Trait 1 of 4" in text  # grain yield in a section of its own
+    lines = text.splitlines()
+    for entry in wrapped:
+        first = lines.index(entry_line(text, entry))
+        rank, code, mean, start, percent = lines[first].split()
+        rest = list(itertools.takewhile(lambda line: not re.match(r"\s*(\d+\s|Grand)", line),
+                                        lines[first + 1:]))
+        assert len(rest) >= 1, entry  # on two lines at least
+        assert start + "".join("".join(line.split()) for line in rest) == letters, entry
+    for trait in ("heading_days", "plant_height", "test_weight"):
+        assert trait in pdf_text(path)
 
 
 # --- where the file goes -------------------------------------------------------------------------
