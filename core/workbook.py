@@ -42,7 +42,7 @@ if TYPE_CHECKING:
     from openpyxl.worksheet.worksheet import Worksheet
 
     from trialdesk.core.fieldbook import FieldBook
-    from trialdesk.core.results import TraitResult, TrialAnalysis
+    from trialdesk.core.results import Comparison, EntryMean, TraitResult, TrialAnalysis
 
 __all__ = ["FIXED_SHEETS", "P_FORMAT", "command_line", "sheet_titles", "write_workbook"]
 
@@ -84,6 +84,7 @@ class _Num:
     value: float | int | None
     decimals: int | None = None
     p_value: bool = False
+    percent: bool = False  # a share, shown as a percentage with ``decimals`` places
 
     @property
     def shown(self) -> bool:
@@ -95,13 +96,16 @@ class _Num:
             return P_FORMAT
         if self.decimals is None:
             return "General"
-        return "0." + "0" * self.decimals if self.decimals else "0"
+        fixed = "0." + "0" * self.decimals if self.decimals else "0"
+        return fixed + "%" if self.percent else fixed
 
     def width(self) -> int:
         if self.p_value:
             return len("<0.0001")
         if self.decimals is None:
             return len(repr(self.value))
+        if self.percent:
+            return len(f"{100 * self.value:.{self.decimals}f}%")
         return len(f"{self.value:.{self.decimals}f}")
 
 
@@ -311,17 +315,17 @@ def _header_text(text: str) -> str:
     return _ILLEGAL_CHARACTERS.sub("", text).replace("&", "&&")
 
 
-def sheet_titles(traits: Sequence[str]) -> list[str]:
+def sheet_titles(traits: Sequence[str], fixed: Sequence[str] = FIXED_SHEETS) -> list[str]:
     """Excel-safe, unique sheet titles for the trait sheets.
 
     Excel's rules: at most 31 characters, none of ``[]:*?/\\``, no apostrophe at either end, and
-    no two sheets whose names differ only in case. Titles also avoid the workbook's own sheets and
-    the name Excel reserves ("History").
+    no two sheets whose names differ only in case. Titles also avoid the workbook's own sheets
+    (``fixed``) and the name Excel reserves ("History").
 
     >>> sheet_titles(["yield [t/ha]", "Data", "yield (t/ha)"])
     ['yield _t_ha_', 'Data (2)', 'yield (t_ha)']
     """
-    taken = {name.casefold() for name in (*FIXED_SHEETS, *_EXCEL_RESERVED)}
+    taken = {name.casefold() for name in (*fixed, *_EXCEL_RESERVED)}
     titles = []
     for trait in traits:
         base = _SHEET_FORBIDDEN.sub("_", _ILLEGAL_CHARACTERS.sub("", trait))
@@ -376,13 +380,13 @@ def command_line(analysis: TrialAnalysis, book: FieldBook | None = None) -> str:
     return shlex.join(args)
 
 
-def _mark_font(column: ReportColumn, mark: str) -> str | None:
+def _mark_font(higher_is_better: bool, mark: str) -> str | None:
     """The font of a mean: "better" or "worse" when the entry differs from the checks one way
     only, judged by the trait's direction (higher is better unless marked lower is better)."""
     above, below = ABOVE_MARK in mark, BELOW_MARK in mark
     if above == below:
         return None
-    return "better" if above == column.higher_is_better else "worse"
+    return "better" if above == higher_is_better else "worse"
 
 
 def _critical_label(name: str) -> str:
@@ -425,7 +429,7 @@ def _summary(sheet: _Sheet, report: TrialReport, page: _Page) -> None:
         for j, (column, mean, letters, mark) in enumerate(
                 zip(report.columns, r.means, r.letters, r.marks, strict=True)):
             values += [_Num(mean, column.decimals), f"{letters} {mark}".strip()]
-            if font := _mark_font(column, mark):
+            if font := _mark_font(column.higher_is_better, mark):
                 fonts[i, first - 1 + 2 * j] = font
         values += [_Num(r.percent_of_check, 1), _Num(r.rank, 0)]
         body.append(values)
@@ -507,35 +511,49 @@ def _trait_sheet(sheet: _Sheet, report: TrialReport, result: TraitResult, column
     row += len(stats) + 3
 
     names = {r.entry: r.name for r in report.rows}
-    with_names = any(names.values())
-    headers = ["Rank", "Entry", *(["Name"] if with_names else []), "Check", "Mean", "SE", "n",
-               "Letters", "% of check", "Above checks", "Below checks"]
-    mean_col = headers.index("Mean")
-    entries, fonts = [], {}
-    for i, e in enumerate(result.entries):
-        entries.append([_Num(e.rank, 0), e.entry,
-                        *([names.get(e.entry, "")] if with_names else []),
-                        "yes" if e.is_check else "no", _Num(e.mean, d), _Num(e.se, d),
-                        _Num(e.n, 0), e.letters, _Num(e.percent_of_check, 1),
-                        ", ".join(e.above_checks), ", ".join(e.below_checks)])
-        mark = (ABOVE_MARK if e.above_checks else "") + (BELOW_MARK if e.below_checks else "")
-        if font := _mark_font(column, mark):
-            fonts[i, mean_col] = font
-    sheet.heading(row, "Entries, ranked")
-    row = sheet.table(row + 1, headers, entries, checks=[e.is_check for e in result.entries],
-                      banded=True, fonts=fonts) + 1
-
-    sheet.heading(row, "Comparisons with the checks" if result.method == "dunnett"
-                  else "All pairwise comparisons")
-    pairs = [[c.entry_a, c.entry_b, _Num(c.difference, d), _Num(c.se, d), _p(c.p_adjusted),
-              _Num(c.lower, d), _Num(c.upper, d), "yes" if c.significant else "no"]
-             for c in result.comparisons]
-    head = row + 1
-    end = sheet.table(head, ["Entry a", "Entry b", "Difference (a - b)", "SE", "Adjusted p",
-                             "Lower limit", "Upper limit", "Significant"], pairs, banded=True)
+    row = _entries_table(sheet, row, result.entries, d, column.higher_is_better,
+                         names if any(names.values()) else None)
+    head, end = _comparisons_table(sheet, row, result.comparisons, d,
+                                   dunnett=result.method == "dunnett")
     # Several tables share the sheet, so a frozen table heading would mislabel the others: the
     # title row (the trait) stays in view instead. The filter is on the longest table.
     sheet.finish(page, title_rows="1:1", freeze="A2", filter_ref=f"A{head}:H{max(head, end - 1)}")
+
+
+def _entries_table(sheet: _Sheet, row: int, entries: Sequence[EntryMean], d: int,
+                   higher_is_better: bool, names: dict[str, str] | None = None) -> int:
+    """The ranked entries under the heading at ``row`` (means, SEs and differences at ``d``
+    decimals; ``names`` adds a column of entry names); the row after the table and a blank one
+    is returned."""
+    headers = ["Rank", "Entry", *(["Name"] if names else []), "Check", "Mean", "SE", "n",
+               "Letters", "% of check", "Above checks", "Below checks"]
+    mean_col = headers.index("Mean")
+    rows, fonts = [], {}
+    for i, e in enumerate(entries):
+        rows.append([_Num(e.rank, 0), e.entry, *([names.get(e.entry, "")] if names else []),
+                     "yes" if e.is_check else "no", _Num(e.mean, d), _Num(e.se, d),
+                     _Num(e.n, 0), e.letters, _Num(e.percent_of_check, 1),
+                     ", ".join(e.above_checks), ", ".join(e.below_checks)])
+        mark = (ABOVE_MARK if e.above_checks else "") + (BELOW_MARK if e.below_checks else "")
+        if font := _mark_font(higher_is_better, mark):
+            fonts[i, mean_col] = font
+    sheet.heading(row, "Entries, ranked")
+    return sheet.table(row + 1, headers, rows, checks=[e.is_check for e in entries],
+                       banded=True, fonts=fonts) + 1
+
+
+def _comparisons_table(sheet: _Sheet, row: int, comparisons: Sequence[Comparison], d: int, *,
+                       dunnett: bool) -> tuple[int, int]:
+    """Every comparison of the method under the heading at ``row``; the table's heading row and
+    the row after the table are returned."""
+    sheet.heading(row, "Comparisons with the checks" if dunnett else "All pairwise comparisons")
+    pairs = [[c.entry_a, c.entry_b, _Num(c.difference, d), _Num(c.se, d), _p(c.p_adjusted),
+              _Num(c.lower, d), _Num(c.upper, d), "yes" if c.significant else "no"]
+             for c in comparisons]
+    head = row + 1
+    end = sheet.table(head, ["Entry a", "Entry b", "Difference (a - b)", "SE", "Adjusted p",
+                             "Lower limit", "Upper limit", "Significant"], pairs, banded=True)
+    return head, end
 
 
 def _diagnostics(sheet: _Sheet, report: TrialReport, page: _Page) -> None:
@@ -679,6 +697,11 @@ def write_workbook(report: TrialReport, path: str | os.PathLike, *,
     _data(_Sheet(workbook.create_sheet("Data"), styles), report, book, page)
     _settings(_Sheet(workbook.create_sheet("Settings"), styles), report, book, page)
 
+    return _save(workbook, target)
+
+
+def _save(workbook: Any, target: Path) -> Path:
+    """Write ``workbook`` to ``target`` atomically; a failure is a message naming the file."""
     buffer = io.BytesIO()
     workbook.save(buffer)
     try:
