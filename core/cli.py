@@ -269,7 +269,7 @@ def _run(args: argparse.Namespace, pdf_writer: PdfWriter | None = None) -> int:
     if args.command == "export":
         return _run_export(args)
     if args.command == "analyze" and _is_series(args):
-        return _run_series(args)
+        return _run_series(args, pdf_writer)
     from trialdesk.core.analysis import analyze
     from trialdesk.core.json_output import analysis_to_json
     from trialdesk.core.summary_text import analysis_text
@@ -311,7 +311,7 @@ def _is_series(args: argparse.Namespace) -> bool:
     return bool(args.location) or len(args.fieldbook) > 1
 
 
-def _run_series(args: argparse.Namespace) -> int:
+def _run_series(args: argparse.Namespace, pdf_writer: PdfWriter | None) -> int:
     """``trialdesk analyze`` of a series: one field book with --location, or several trials."""
     from trialdesk.core.json_output import series_to_json
     from trialdesk.core.series import analyze_series, read_series, series_from_trials
@@ -321,12 +321,6 @@ def _run_series(args: argparse.Namespace) -> int:
     for option, name in ((args.row, "--row"), (args.column, "--column")):
         if option:
             raise TrialInputError(f"{name} is not used in a series analysis: leave it out")
-    if args.workbook:
-        raise TrialInputError("the series workbook is not made yet: use --json or the printed "
-                              "summary", file=args.workbook)
-    if args.pdf:
-        raise TrialInputError("the series PDF summary is not made yet: use --json or the printed "
-                              "summary", file=args.pdf)
     trials = [f for f in files if _is_trial(f)]
     if args.location:
         if len(files) > 1 or trials:
@@ -346,7 +340,41 @@ def _run_series(args: argparse.Namespace) -> int:
         data = series_from_trials(files)
     result = analyze_series(data, _settings_from(args, data.saved_settings),
                             components=args.variance_components)
-    return _print_result(args, series_to_json(result), series_text(result), [])
+    written = _write_series_reports(args, result, data, trials, pdf_writer)
+    return _print_result(args, series_to_json(result), series_text(result), written)
+
+
+def _write_series_reports(args: argparse.Namespace, analysis, data, trials: list[str],
+                          pdf_writer: PdfWriter | None) -> list[str]:
+    """Write the series workbook and PDF summary asked for; the lines saying what was written.
+
+    Trait units come from the trial files (the first that records a trait's unit)."""
+    if not (args.workbook or args.pdf):
+        return []
+    from trialdesk.core.report import trial_context
+    from trialdesk.core.series_report import build_series_report
+
+    units: dict[str, str] = {}
+    for path in trials:
+        traits = trial_context(path)["traits"]
+        for row in traits.itertuples(index=False):
+            if isinstance(row.unit, str) and row.unit:
+                units.setdefault(str(row.name), row.unit)
+    report = build_series_report(analysis, units=units)
+    written = []
+    if args.pdf:
+        if pdf_writer is None:
+            raise TrialInputError("the PDF summary is drawn by the desktop part of Trialdesk: "
+                                  "run it through the trialdesk command", file=args.pdf)
+        pdf_writer(report, args.pdf, args.paper)
+        written.append(f"Wrote the series summary to {args.pdf}.")
+    if args.workbook:
+        from trialdesk.core.series_workbook import write_series_workbook
+
+        write_series_workbook(report, args.workbook, data=data,
+                              components=args.variance_components)
+        written.append(f"Wrote the results workbook to {args.workbook}.")
+    return written
 
 
 def _write_reports(args: argparse.Namespace, analysis, book, pdf_writer: PdfWriter | None

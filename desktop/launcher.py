@@ -26,7 +26,15 @@ def _is_batch(args: list[str]) -> bool:
 
 
 def _write_pdf(report, path: str, paper: str) -> None:
-    """The PDF summary for the batch commands, drawn by Qt offscreen (loaded only when asked)."""
+    """The PDF summary for the batch commands, drawn by Qt offscreen (loaded only when asked):
+    the series summary for the report of a series, else the trial summary."""
+    from trialdesk.core.series_report import SeriesReport
+
+    if isinstance(report, SeriesReport):
+        from trialdesk.desktop.series_pdf import write_series_pdf
+
+        write_series_pdf(report, path, paper=paper)
+        return
     from trialdesk.desktop.report_pdf import write_pdf
 
     write_pdf(report, path, paper=paper)

@@ -156,10 +156,6 @@ def test_component_choices_are_the_cores():
     (["--location", "location", "--season", "season", "--trait", "nope"],
      ["column 'nope'", "there is no such column"]),
     (["--season", "season"], ["give the location column with --location"]),
-    (["--location", "location", "--season", "season", "--workbook", "out.xlsx"],
-     ["the series workbook is not made yet"]),
-    (["--location", "location", "--season", "season", "--pdf", "out.pdf"],
-     ["not made yet"]),
     (["--location", "location", "--row", "row"], ["--row is not used in a series"]),
 ])
 def test_bad_input_exits_2(tmp_path, capsys, args, words):
