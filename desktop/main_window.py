@@ -43,6 +43,7 @@ class MainWindow(QMainWindow):
         self.setAcceptDrops(True)
         self.session = None
         self.runner = None
+        self.series_window = None
         self._pending: list = []
         self._build_actions()
         self._build_menus()
@@ -106,6 +107,10 @@ class MainWindow(QMainWindow):
             "focus_find"), keys.Find)
         self.act_run = self._action("&Run analysis", self.run_analysis, "Ctrl+R")
         self.act_cancel = self._action("&Cancel analysis", self.cancel_analysis)
+        self.act_series = self._action(
+            "Analyse a trial &series...", self.open_series,
+            tip="Analyse the same entries grown in several environments (trial files or one "
+                "field book)")
         self.act_about = self._action("&About Trialdesk", self.show_about)
         for action in (self.act_undo, self.act_redo, self.act_cancel, self.act_workbook,
                        self.act_pdf, self.act_print):
@@ -130,6 +135,8 @@ class MainWindow(QMainWindow):
         analysis = bar.addMenu("&Analysis")
         analysis.addAction(self.act_run)
         analysis.addAction(self.act_cancel)
+        analysis.addSeparator()
+        analysis.addAction(self.act_series)
         report = bar.addMenu("Re&port")
         for action in (self.act_workbook, self.act_pdf, self.act_print):
             report.addAction(action)
@@ -324,6 +331,16 @@ class MainWindow(QMainWindow):
         self.act_run.setEnabled(False)
         self.statusBar().showMessage("Analysing...")
         self.runner.start(settings)
+
+    def open_series(self) -> None:
+        """Show the trial-series window (made the first time)."""
+        if self.series_window is None:
+            from trialdesk.desktop.series_window import SeriesWindow
+
+            self.series_window = SeriesWindow(self)
+        self.series_window.show()
+        self.series_window.raise_()
+        self.series_window.activateWindow()
 
     def cancel_analysis(self) -> None:
         if self.runner is not None and self.runner.is_running():
@@ -528,6 +545,8 @@ class MainWindow(QMainWindow):
         settings.setValue("window/geometry", self.saveGeometry())
         settings.setValue("window/state", self.saveState())
         settings.setValue("window/tab", self.tabs.currentIndex())
+        if self.series_window is not None:
+            self.series_window.close()
         if self.runner is not None:
             self.runner.shutdown()
             self.reports.wait()  # a workbook being written is finished, not cut off
