@@ -440,6 +440,9 @@ class ResultsView(QWidget):
             self.trait_box.addItem(name, name)
         self.trait_box.setCurrentIndex(names.index(wanted) if wanted in names else 0)
         self.trait_box.blockSignals(False)
+        # As wide as the longest name: the style's own size hint cuts names short offscreen.
+        widest = max((self.trait_box.fontMetrics().horizontalAdvance(n) for n in names), default=0)
+        self.trait_box.setMinimumWidth(widest + 3 * self.trait_box.fontMetrics().height())
         self._show_trait()
 
     def _trait_info(self, result: TraitResult) -> tuple[str, int]:
