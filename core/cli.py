@@ -5,8 +5,10 @@
 summary. A field book with ``--location`` (and ``--season``), or several trial files, is analysed
 as a series over environments. ``trialdesk demo`` analyses the bundled demo trial; ``trialdesk
 import`` makes a trial file from a field book (or shows what a re-import would change);
-``trialdesk export`` writes a trial's plots as a field book, filled in or blank. Exit status: 0 on
-success, 2 on bad input, with the message on standard error and no traceback.
+``trialdesk export`` writes a trial's plots as a field book, filled in or blank; ``trialdesk
+layout`` randomizes entries to plots before sowing and writes the new trial file (and a blank field
+book).
+Exit status: 0 on success, 2 on bad input, with the message on standard error and no traceback.
 """
 
 from __future__ import annotations
@@ -25,8 +27,13 @@ EXIT_BAD_INPUT = 2
 #: Papers of the PDF summary.
 PAPERS = ("A4", "Letter")
 
-#: Draws the PDF summary: ``(report, path, paper)``.
+#: Draws the PDF summary: ``(report, path, paper)``; for ``layout``, the field map of the layout.
 PdfWriter = Callable[[Any, str, str], Any]
+
+#: The ``layout`` option that gives each setting of trialdesk.core.layouts.make_layout.
+_LAYOUT_OPTIONS = {"entries": "--entries", "checks": "--checks", "design": "--design",
+                   "reps": "--reps", "block_size": "--block-size", "rows": "--rows",
+                   "columns": "--columns", "serpentine": "--serpentine", "seed": "--seed"}
 
 
 def _add_role_options(parser: argparse.ArgumentParser) -> None:
@@ -117,6 +124,44 @@ def _add_import_options(parser: argparse.ArgumentParser) -> None:
                         help="re-import: make the changes shown (without it, nothing changes)")
 
 
+def _add_layout_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--entries", metavar="FILE|N", required=True,
+                        help="a number N (entries E001 ... are made up), or a CSV or text file "
+                        "of entry codes: one a line, or a column 'entry' or 'code' (and 'name')")
+    parser.add_argument("--checks", metavar="CODE", nargs="+", default=[],
+                        help="check entries; those not in the entry list are added to it")
+    parser.add_argument("--design", choices=("rcbd", "crd", "alpha"), required=True,
+                        help="rcbd: complete blocks; crd: no blocks; alpha: incomplete blocks "
+                        "within each replicate")
+    parser.add_argument("--reps", metavar="R", type=int, required=True,
+                        help="replicates (crd: plots of each entry)")
+    parser.add_argument("--block-size", metavar="K", type=int,
+                        help="plots per incomplete block (alpha); it must divide the entries")
+    field = parser.add_argument_group("the field (plots fill it replicate by replicate, along "
+                                      "the rows)")
+    field.add_argument("--rows", metavar="N", type=int, help="rows of plots in the field")
+    field.add_argument("--columns", metavar="N", type=int, help="plots in each row")
+    field.add_argument("--serpentine", action="store_true",
+                       help="turn every other row back, so plot numbers run on in the field")
+    parser.add_argument("--seed", metavar="S", type=int, required=True,
+                        help="seed of the randomization: the same seed gives the same layout")
+    parser.add_argument("--output", "-o", metavar="TRIAL", required=True,
+                        help="the trial file to make (.trial); it must not exist")
+    parser.add_argument("--fieldbook", metavar="FIELD", help="also write the blank field book "
+                        "for sowing and notes (.xlsx or .csv); it must not exist")
+    parser.add_argument("--trait", metavar="NAME", action="append", default=None,
+                        help="trait to record (repeat for several; default grain_yield)")
+    facts = parser.add_argument_group("trial facts")
+    facts.add_argument("--name", help="trial name (default: the trial file's name)")
+    facts.add_argument("--station", help="station or location")
+    facts.add_argument("--season", help="season, e.g. 2026 main")
+    facts.add_argument("--crop", help="crop")
+    reports = parser.add_argument_group("field map")
+    reports.add_argument("--pdf", metavar="PATH", help="write the printable field map (PDF)")
+    reports.add_argument("--paper", choices=PAPERS, default="A4",
+                         help="paper of the field map (default A4)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the batch sub-commands."""
     parser = argparse.ArgumentParser(
@@ -151,6 +196,10 @@ def build_parser() -> argparse.ArgumentParser:
                      help="leave the trait columns empty: a field book to fill in")
     exp.add_argument("--trait", metavar="NAME", action="append", default=None,
                      help="only these traits (repeat for several)")
+    lay = sub.add_parser("layout", help="randomize entries to plots before sowing",
+                         description="Randomize entries to plots, number the plots in field "
+                         "order and make the trial file, with a blank field book.")
+    _add_layout_options(lay)
     return parser
 
 
@@ -263,7 +312,67 @@ def _run_export(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _layout_entries(value: str):
+    """The entry codes (and names) of ``--entries``: a number, or a file."""
+    from trialdesk.core.layouts import EntryList, numbered_entries, read_entry_list
+
+    if value.strip().isdecimal():
+        count = int(value)
+        if count < 1:
+            raise TrialInputError(f"--entries: give 1 or more entries, not {value}")
+        return EntryList(codes=numbered_entries(count), names=())
+    return read_entry_list(value)
+
+
+def _run_layout(args: argparse.Namespace, pdf_writer: PdfWriter | None) -> int:
+    """``trialdesk layout``: randomize, write the trial file, the field book and the field map."""
+    import os
+
+    from trialdesk.core.layouts import LayoutSettingError, make_layout, write_layout
+
+    if args.pdf and pdf_writer is None:
+        raise TrialInputError("the PDF field map is drawn by the desktop part of Trialdesk: "
+                              "run it through the trialdesk command", file=args.pdf)
+    for path, option in ((args.output, "--output"), (args.fieldbook, "--fieldbook")):
+        if path and os.path.lexists(path):
+            raise TrialInputError(f"the file named by {option} exists already; a layout never "
+                                  "writes over a file: choose a new name", file=path)
+    if args.fieldbook and not args.fieldbook.lower().endswith((".xlsx", ".csv")):
+        raise TrialInputError("--fieldbook: the field book's name must end in .xlsx or .csv",
+                              file=args.fieldbook)
+    if args.fieldbook and not os.path.isdir(os.path.dirname(os.path.abspath(args.fieldbook))):
+        raise TrialInputError("--fieldbook: the folder for the field book does not exist",
+                              file=args.fieldbook)
+    entries = _layout_entries(args.entries)
+    try:
+        layout = make_layout(entries.codes, checks=args.checks, design=args.design,
+                             reps=args.reps, block_size=args.block_size, rows=args.rows,
+                             columns=args.columns, serpentine=args.serpentine, seed=args.seed)
+    except LayoutSettingError as exc:
+        raise TrialInputError(f"{_LAYOUT_OPTIONS[exc.setting]}: {exc.message}") from None
+    facts = {"name": args.name, "station": args.station, "season": args.season,
+             "crop": args.crop}
+    write_layout(layout, args.output, facts={k: v for k, v in facts.items() if v is not None},
+                 traits=args.trait or ("grain_yield",), names=entries.name_map())
+    print(layout.text())
+    print(f"Same seed, same layout: rerun with --seed {layout.seed} to get this layout again.")
+    print(f"Wrote {args.output}.")
+    if args.fieldbook:
+        from trialdesk.core.exporter import export_fieldbook
+        from trialdesk.core.trialfile import TrialFile
+
+        with TrialFile.open(args.output) as trial:  # for editing: closing leaves no side files
+            export_fieldbook(trial, args.fieldbook, blank=True)
+        print(f"Wrote the field book to {args.fieldbook}.")
+    if args.pdf:
+        pdf_writer(layout, args.pdf, args.paper)
+        print(f"Wrote the field map to {args.pdf}.")
+    return EXIT_OK
+
+
 def _run(args: argparse.Namespace, pdf_writer: PdfWriter | None = None) -> int:
+    if args.command == "layout":
+        return _run_layout(args, pdf_writer)
     if args.command == "import":
         return _run_import(args)
     if args.command == "export":
@@ -413,8 +522,9 @@ def _write_reports(args: argparse.Namespace, analysis, book, pdf_writer: PdfWrit
 def main(argv: Sequence[str] | None = None, *, pdf_writer: PdfWriter | None = None) -> int:
     """Run a batch sub-command; returns the exit status.
 
-    ``pdf_writer(report, path, paper)`` draws the PDF summary. The core never loads Qt, so the
-    ``trialdesk`` command passes the desktop part's writer; without one, ``--pdf`` is refused.
+    ``pdf_writer(report, path, paper)`` draws the PDF summary (for ``layout``, the field map of
+    the :class:`~trialdesk.core.layouts.Layout`). The core never loads Qt, so the ``trialdesk``
+    command passes the desktop part's writer; without one, ``--pdf`` is refused.
     """
     args = build_parser().parse_args(argv)
     try:
