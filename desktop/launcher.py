@@ -12,7 +12,7 @@ from __future__ import annotations
 import sys
 from collections.abc import Sequence
 
-BATCH_COMMANDS = ("analyze", "import", "export")
+BATCH_COMMANDS = ("analyze", "import", "export", "layout")
 
 
 def _is_batch(args: list[str]) -> bool:
