@@ -212,11 +212,19 @@ class Precision:
 
 
 def _fit(book: FieldBook, trait: str, design: str) -> tuple[TrialFit, np.ndarray]:
+    """The complete-block (or completely randomized) fit of one trait.
+
+    An alpha design's replicates are complete blocks, so it is fitted as an RCBD here: the
+    read-out's precision is then the one the incomplete blocks can only improve on.
+    """
     if trait not in book.traits:
         raise TrialInputError(f"there is no trait '{trait}'", file=book.source, column=trait)
-    if design not in ("rcbd", "crd"):
-        raise TrialInputError(f"unknown design '{design}': choose rcbd or crd")
+    if design not in ("rcbd", "crd", "alpha"):
+        raise TrialInputError(f"unknown design '{design}': choose rcbd, crd or alpha")
+    design = "rcbd" if design == "alpha" else design
     y = book.values[trait].to_numpy(dtype=float)
+    if not np.isfinite(y).any():
+        raise TrialInputError(f"{trait} has no values yet", file=book.source, column=trait)
     blocks = book.plots["block"].to_numpy() if design == "rcbd" else None
     if blocks is not None and pd.isna(pd.Series(blocks)).any():
         raise TrialInputError("an RCBD needs a block for every plot", file=book.source)
@@ -233,7 +241,7 @@ def trait_precision(book: FieldBook, trait: str, design: str) -> Precision:
     mean = float(np.nanmean(y))
     cv = float(100.0 * np.sqrt(fit.residual_ms) / mean) if mean else float("nan")
     plots = book.plots
-    if design == "rcbd":
+    if design in ("rcbd", "alpha"):
         replicates = float(plots["block"].nunique())
     else:
         replicates = len(plots) / plots["entry"].nunique()

@@ -26,10 +26,17 @@ def _is_batch(args: list[str]) -> bool:
 
 
 def _write_pdf(report, path: str, paper: str) -> None:
-    """The PDF summary for the batch commands, drawn by Qt offscreen (loaded only when asked):
-    the series summary for the report of a series, else the trial summary."""
+    """The PDF for the batch commands, drawn by Qt offscreen (loaded only when asked): the
+    field book of a layout, the series summary for the report of a series, else the trial
+    summary."""
+    from trialdesk.core.layouts import Layout
     from trialdesk.core.series_report import SeriesReport
 
+    if isinstance(report, Layout):
+        from trialdesk.desktop.layout_pdf import write_layout_pdf
+
+        write_layout_pdf(report, path, paper=paper)
+        return
     if isinstance(report, SeriesReport):
         from trialdesk.desktop.series_pdf import write_series_pdf
 

@@ -44,6 +44,7 @@ class MainWindow(QMainWindow):
         self.session = None
         self.runner = None
         self.series_window = None
+        self.layout_dialog = None
         self._pending: list = []
         self._build_actions()
         self._build_menus()
@@ -87,6 +88,9 @@ class MainWindow(QMainWindow):
         self.act_import = self._action("&Import field book...", self.choose_fieldbook, "Ctrl+I",
                                        "Make a trial file from a CSV or XLSX field book")
         self.act_demo = self._action("Open the &demo trial", self.open_demo)
+        self.act_layout = self._action(
+            "New trial &layout...", self.new_layout,
+            tip="Randomize entries to plots and make a new trial file (and its field books)")
         self.act_export = self._action("&Export plot data...", self.export_plots, keys.SaveAs,
                                        "Write the plot data as a field book (CSV or XLSX)")
         self.act_blank = self._action("Export &blank field book...", self.export_blank)
@@ -119,7 +123,7 @@ class MainWindow(QMainWindow):
     def _build_menus(self) -> None:
         bar = self.menuBar()
         trial = bar.addMenu("&Trial")
-        for action in (self.act_open, self.act_import, self.act_demo):
+        for action in (self.act_open, self.act_import, self.act_layout, self.act_demo):
             trial.addAction(action)
         self.recent_menu = trial.addMenu("Recent trials")
         trial.addSeparator()
@@ -342,6 +346,16 @@ class MainWindow(QMainWindow):
         self.series_window.raise_()
         self.series_window.activateWindow()
 
+    def new_layout(self) -> None:
+        """Show the dialog that draws a field layout and writes a new trial file (made the first
+        time and kept, so what was typed is still there when it is opened again)."""
+        if self.layout_dialog is None:
+            from trialdesk.desktop.layout_dialog import LayoutDialog
+
+            self.layout_dialog = LayoutDialog(self)
+            self.layout_dialog.open_requested.connect(self.open_path)
+        self.layout_dialog.open()
+
     def cancel_analysis(self) -> None:
         if self.runner is not None and self.runner.is_running():
             self.runner.cancel()
@@ -547,6 +561,8 @@ class MainWindow(QMainWindow):
         settings.setValue("window/tab", self.tabs.currentIndex())
         if self.series_window is not None:
             self.series_window.close()
+        if self.layout_dialog is not None:
+            self.layout_dialog.wait()  # a trial file being written is finished, not cut off
         if self.runner is not None:
             self.runner.shutdown()
             self.reports.wait()  # a workbook being written is finished, not cut off

@@ -235,3 +235,20 @@ def test_residual_table_crd_and_mean_limits_against_statsmodels():
     assert_allclose(limits.loc[ci.index, "upper"], ci[1], rtol=1e-10)
     precision = planning.trait_precision(book, "weight", "crd")
     assert precision.residual_df == 27 and precision.replicates == 10
+
+
+def test_precision_of_a_trait_with_no_values_and_of_an_alpha_trial(tmp_path):
+    book, frame = oats_fieldbook(tmp_path, missing=())
+    # An alpha trial's replicates are complete blocks: its read-out is the RCBD fit's
+    # (statsmodels OLS with blocks and entries as the reference).
+    model = smf.ols("Q('yield') ~ C(block) + C(entry)", data=frame).fit()
+    alpha = planning.trait_precision(book, "yield", "alpha")
+    assert alpha.residual_df == model.df_resid and alpha.replicates == 6
+    assert_allclose(alpha.cv_percent, 100 * np.sqrt(model.scale) / frame["yield"].mean(),
+                    rtol=1e-10)
+    frame["yield"] = np.nan  # a new trial, laid out but not yet harvested
+    path = tmp_path / "empty.csv"
+    frame.assign(height=1.0).to_csv(path, index=False)
+    empty = read_fieldbook(path, traits=["yield", "height"])
+    with pytest.raises(TrialInputError, match="yield has no values yet"):
+        planning.trait_precision(empty, "yield", "rcbd")
