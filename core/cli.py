@@ -19,6 +19,7 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 from trialdesk.core.errors import TrialInputError
+from trialdesk.core.results import DESIGNS, SPATIAL_METHODS
 from trialdesk.core.separation import CHECK_DIRECTIONS, METHODS
 
 EXIT_OK = 0
@@ -44,6 +45,8 @@ def _add_role_options(parser: argparse.ArgumentParser) -> None:
     roles.add_argument("--plot", metavar="COL", help="column of plot numbers")
     roles.add_argument("--row", metavar="COL", help="column of field rows")
     roles.add_argument("--column", metavar="COL", help="column of field columns")
+    roles.add_argument("--incomplete-block", metavar="COL",
+                       help="column of incomplete blocks within replicates (alpha designs)")
     roles.add_argument("--trait", metavar="COL", action="append", default=[],
                        help="trait to analyse (repeat for several; default: every numeric column)")
     roles.add_argument("--decimal-comma", action="store_true",
@@ -58,8 +61,15 @@ def _add_analysis_options(parser: argparse.ArgumentParser) -> None:
     _add_role_options(parser)
     analysis = parser.add_argument_group(
         "analysis (for a trial file, the settings saved in it unless given here)")
-    analysis.add_argument("--design", choices=("rcbd", "crd"),
-                          help="rcbd: randomized complete blocks (default); crd: no blocks")
+    analysis.add_argument("--design", choices=DESIGNS,
+                          help="rcbd: randomized complete blocks (default); crd: no blocks; "
+                          "alpha: incomplete blocks within replicates (REML)")
+    analysis.add_argument("--spatial", choices=SPATIAL_METHODS,
+                          help="field-trend adjustment from each plot's row and column: rowcol "
+                          "(rows and columns random) or papadakis (neighbour covariate); "
+                          "default none")
+    analysis.add_argument("--entries-random", action="store_true", default=None,
+                          help="rank entries by BLUPs (entries random; no mean separation)")
     analysis.add_argument("--method", choices=METHODS,
                           help="mean separation method (default: tukey)")
     analysis.add_argument("--alpha", type=float, help="significance level (default 0.05)")
@@ -106,7 +116,7 @@ def _add_import_options(parser: argparse.ArgumentParser) -> None:
     facts.add_argument("--station", help="station or location")
     facts.add_argument("--season", help="season, e.g. 2026 main")
     facts.add_argument("--crop", help="crop; also picks the default standard moisture")
-    facts.add_argument("--design", choices=("rcbd", "crd"), default="rcbd")
+    facts.add_argument("--design", choices=DESIGNS, default="rcbd")
     facts.add_argument("--plot-area", metavar="M2", type=float,
                        help="harvested area of a plot in square metres")
     facts.add_argument("--standard-moisture", metavar="PCT", type=float,
@@ -215,6 +225,8 @@ def _settings_from(args: argparse.Namespace, saved: dict):
         "check_direction": args.check_direction,
         "traits": args.trait or None,
         "lower_is_better": args.lower_is_better,
+        "spatial": getattr(args, "spatial", None),
+        "entries_random": getattr(args, "entries_random", None),
     }
     merged = {**saved, **{k: v for k, v in given.items() if v is not None}}
     return AnalysisSettings.from_dict(merged)
@@ -233,6 +245,7 @@ def _read_book(args: argparse.Namespace):
     return read_fieldbook(
         args.fieldbook, sheet=args.sheet, entry=args.entry, block=args.block,
         plot=args.plot, row=args.row, column=args.column,
+        incomplete_block=args.incomplete_block,
         traits=args.trait or None, decimal_comma=args.decimal_comma,
     )
 

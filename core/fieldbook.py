@@ -57,7 +57,8 @@ from trialdesk.core.value_checks import (
     similar_entry_codes,
 )
 
-__all__ = ["ROLE_NAMES", "FieldBook", "check_design", "read_fieldbook"]
+__all__ = ["ROLE_NAMES", "FieldBook", "check_alpha_design", "check_design", "check_field_positions",
+           "read_fieldbook"]
 
 #: Column names recognised for each role, compared case-insensitively, ignoring surrounding
 #: spaces and treating runs of spaces, underscores, dots and hyphens as one space ("Plot_No." is
@@ -65,6 +66,7 @@ __all__ = ["ROLE_NAMES", "FieldBook", "check_design", "read_fieldbook"]
 ROLE_NAMES: dict[str, tuple[str, ...]] = {
     "entry": ("entry", "variety", "genotype", "line", "cultivar", "entry code", "treatment"),
     "block": ("block", "rep", "replicate", "replication"),
+    "incomplete_block": ("incomplete block", "iblock", "sub block", "subblock", "inc block"),
     "plot": ("plot", "plot no", "plot number"),
     "row": ("row",),
     "column": ("column", "col", "range"),
@@ -99,7 +101,7 @@ _FAR_ROBUST_Z = 6.0
 _FAR_MIN_VALUES = 5
 
 _LIST_AT_MOST = 10
-_PLOT_COLUMNS = ("entry", "block", "plot", "row", "column", "source_row")
+_PLOT_COLUMNS = ("entry", "block", "incomplete_block", "plot", "row", "column", "source_row")
 _LARGEST_POSITION = 2**53  # a field row or column; past this a float skips integers
 
 
@@ -115,7 +117,9 @@ class FieldBook:
         (str; "1", "2", ... in file order when the file has no plot column), ``row`` and
         ``column`` (Int64 field position, ``<NA>`` when unknown) and ``source_row`` (int: the row
         number as the user sees it in the spreadsheet; in a CSV the header is row 1), and one text
-        column per label kept with ``labels`` (see :func:`read_fieldbook`).
+        column per label kept with ``labels`` (see :func:`read_fieldbook`). When the file has an
+        incomplete-block column (an alpha design), also ``incomplete_block`` (str), the block
+        within the replicate.
     values : pandas.DataFrame
         Same index as ``plots``; one float64 column per trait under its original name, NaN for a
         missing value.
@@ -123,7 +127,8 @@ class FieldBook:
         Trait column names in file order.
     roles : dict
         ``"entry"``, ``"block"``, ``"plot"``, ``"row"``, ``"column"`` (and each label kept) -> the
-        original name of the column used for it, or None when there is none.
+        original name of the column used for it, or None when there is none;
+        ``"incomplete_block"`` only when the file has such a column.
     source : str
         The path as given.
     sha256 : str
@@ -208,6 +213,7 @@ def read_fieldbook(
     row: str | None = None,
     column: str | None = None,
     traits: Sequence[str] | None = None,
+    incomplete_block: str | None = None,
     decimal_comma: bool = False,
     labels: Mapping[str, str] | None = None,
 ) -> FieldBook:
@@ -223,6 +229,9 @@ def read_fieldbook(
     entry, block, plot, row, column : str, optional
         Name of the column holding the entry code, block (replicate) label, plot number, and field
         row and column. Each one not given is looked for under the names in :data:`ROLE_NAMES`.
+    incomplete_block : str, optional
+        Name of the column holding the incomplete block within the replicate (alpha designs);
+        looked for under its usual names when not given.
     traits : sequence of str, optional
         The trait columns to read. By default every other column that holds numbers.
     decimal_comma : bool, default False
@@ -269,7 +278,10 @@ def read_fieldbook(
     table = opened.table
     columns, role_warnings = _find_roles(table, {
         "entry": entry, "block": block, "plot": plot, "row": row, "column": column,
+        "incomplete_block": incomplete_block,
     })
+    if columns["incomplete_block"] is None:
+        del columns["incomplete_block"]  # a role of alpha designs only, recorded when present
     label_columns = _find_labels(table, columns, labels or {})
     trait_columns = _find_traits(table, {**columns, **label_columns}, traits, decimal_comma)
     plots = _build_plots(table, columns, label_columns)
@@ -990,9 +1002,13 @@ def _build_plots(table: _Table, columns: dict[str, int | None],
     else:
         plots = _labels(table, columns["plot"], "no plot number in this plot row")
         _check_unique_plots(table, plots, table.names[columns["plot"]], kept)
+    nested = {} if "incomplete_block" not in columns else {"incomplete_block": pd.Series(
+        _labels(table, columns["incomplete_block"], "no incomplete block in this plot row"),
+        dtype="str")}
     return pd.DataFrame({
         "entry": pd.Series(entries, dtype="str"),
         "block": pd.Series(blocks, dtype="str" if columns["block"] is not None else object),
+        **nested,
         "plot": pd.Series(plots, dtype="str"),
         "row": _positions(table, columns["row"]),
         "column": _positions(table, columns["column"]),
@@ -1161,7 +1177,8 @@ def _quoted(names: Sequence[str], conjunction: str = "") -> str:
 
 
 def check_design(
-    book: FieldBook, *, design: str, traits: Sequence[str], checks: Sequence[str] = ()
+    book: FieldBook, *, design: str, traits: Sequence[str], checks: Sequence[str] = (),
+    field_positions: bool = False,
 ) -> None:
     """Check that a field book can be analysed as the given design, before any analysis.
 
@@ -1170,11 +1187,15 @@ def check_design(
     book : FieldBook
         As returned by :func:`read_fieldbook`.
     design : {"rcbd", "crd"}
-        Randomized complete block design, or completely randomized design.
+        Randomized complete block design, or completely randomized design (an alpha design is
+        checked by :func:`check_alpha_design`).
     traits : sequence of str
         The traits to be analysed.
     checks : sequence of str, optional
         Entry codes of the check varieties, which must be in the trial.
+    field_positions : bool, default False
+        The analysis needs the field row and column of every plot (a field-trend adjustment):
+        see :func:`check_field_positions`.
 
     Raises
     ------
@@ -1182,16 +1203,92 @@ def check_design(
         RCBD: no block column, fewer than two blocks, an entry twice in one block. Both designs: a
         trait not in the field book, an entry with no data for a trait, fewer than two entries with
         data, no degrees of freedom left for error (in a CRD: no entry replicated), a check that is
-        not an entry of the trial.
+        not an entry of the trial, and with ``field_positions`` a plot without a known, unique
+        field position.
     """
-    kind = _design_kind(design, book.source)
+    _check(book, _design_kind(design, book.source), traits, checks, field_positions)
+
+
+def check_alpha_design(
+    book: FieldBook, *, traits: Sequence[str], checks: Sequence[str] = (),
+    field_positions: bool = False,
+) -> None:
+    """Check that a field book can be analysed as an alpha design (incomplete blocks within
+    replicates), before any analysis.
+
+    Parameters are those of :func:`check_design`.
+
+    Raises
+    ------
+    TrialInputError
+        No block (replicate) column, fewer than two replicates, an entry twice in one replicate,
+        no incomplete-block column, and the checks :func:`check_design` makes of every design
+        (the error degrees of freedom those of the intra-block analysis).
+    """
+    _check(book, "alpha", traits, checks, field_positions)
+
+
+def _check(book: FieldBook, kind: str, traits: object, checks: object,
+           field_positions: bool) -> None:
     chosen = _design_traits(book, traits)
-    if kind == "rcbd":
-        _check_blocks(book)
+    if kind in ("rcbd", "alpha"):
+        _check_blocks(book, kind)
+    if kind == "alpha":
+        _check_incomplete_blocks(book)
     for trait in chosen:
         _check_entries_have_data(book, trait)
         _check_error_df(book, trait, kind)
     _check_checks(book, checks)
+    if field_positions:
+        check_field_positions(book)
+
+
+def check_field_positions(book: FieldBook) -> None:
+    """Check that every plot has a field row and column and no two plots share them.
+
+    Raises
+    ------
+    TrialInputError
+        If the field book has no row or no column column, a plot's position is unknown, or two
+        plots have the same row and column.
+    """
+    for role in ("row", "column"):
+        if book.roles.get(role) is None:
+            raise TrialInputError(
+                f"a field-trend adjustment needs the field row and column of every plot, and no "
+                f"{role} column was found: looked for a column named "
+                f"{_quoted(ROLE_NAMES[role], conjunction='or')}. Name the {role} column, or "
+                "analyse without a field-trend adjustment",
+                file=book.source,
+            )
+    plots = book.plots
+    for role in ("row", "column"):
+        unknown = plots[role].isna().to_numpy()
+        if unknown.any():
+            k = int(np.argmax(unknown))
+            raise TrialInputError(
+                f"this plot has no field {role}; a field-trend adjustment needs the position of "
+                "every plot",
+                file=book.source, row=_spreadsheet_row(plots, k), plot=str(plots["plot"].iat[k]),
+                column=book.roles[role],
+            )
+    rows = plots["row"].to_numpy(dtype=np.int64)
+    columns = plots["column"].to_numpy(dtype=np.int64)
+    repeated = pd.DataFrame({"row": rows, "column": columns}).duplicated().to_numpy()
+    if repeated.any():
+        k = int(np.argmax(repeated))
+        first = int(np.argmax((rows == rows[k]) & (columns == columns[k])))
+        raise TrialInputError(
+            f"this plot has the same field row and column ({rows[k]}, {columns[k]}) as plot "
+            f"{plots['plot'].iat[first]}; each plot needs its own position",
+            file=book.source, row=_spreadsheet_row(plots, k), plot=str(plots["plot"].iat[k]),
+            column=book.roles["row"],
+        )
+
+
+def _spreadsheet_row(plots: pd.DataFrame, k: int) -> int | None:
+    row = plots["source_row"].iat[k]
+    return None if pd.isna(row) else int(row)
 
 
 def _design_kind(design: object, source: str) -> str:
@@ -1214,11 +1311,13 @@ def _design_traits(book: FieldBook, traits: object) -> list[str]:
     return list(dict.fromkeys(wanted))
 
 
-def _check_blocks(book: FieldBook) -> None:
+def _check_blocks(book: FieldBook, kind: str) -> None:
     name = book.roles["block"]
+    design, blocks_are = ("an RCBD", "blocks") if kind == "rcbd" else ("an alpha design",
+                                                                       "replicates")
     if name is None:
         raise TrialInputError(
-            "an RCBD needs a block (replicate) column, and none was found: looked for a column "
+            f"{design} needs a block (replicate) column, and none was found: looked for a column "
             f"named {_quoted(ROLE_NAMES['block'], conjunction='or')}. Name the block column, "
             "or analyse the trial as a CRD",
             file=book.source,
@@ -1226,7 +1325,8 @@ def _check_blocks(book: FieldBook) -> None:
     blocks = book.plots["block"]
     if blocks.nunique() < 2:
         raise TrialInputError(
-            f"an RCBD needs at least two blocks, and the file has one ('{blocks.iloc[0]}')",
+            f"{design} needs at least two {blocks_are}, and the file has one "
+            f"('{blocks.iloc[0]}')",
             file=book.source, column=name,
         )
     repeats = repeated_in_blocks(book.plots["entry"].to_numpy(dtype=object),
@@ -1236,6 +1336,17 @@ def _check_blocks(book: FieldBook) -> None:
         first = repeats[0]
         raise TrialInputError(
             first.message, file=book.source, row=first.row, column=book.roles["entry"]
+        )
+
+
+def _check_incomplete_blocks(book: FieldBook) -> None:
+    if book.roles.get("incomplete_block") is None or "incomplete_block" not in book.plots:
+        raise TrialInputError(
+            "an alpha design needs an incomplete-block column (the block within the replicate), "
+            "and none was found: looked for a column named "
+            f"{_quoted(ROLE_NAMES['incomplete_block'], conjunction='or')}. Name the "
+            "incomplete-block column, or analyse the trial as an RCBD",
+            file=book.source,
         )
 
 
@@ -1263,6 +1374,18 @@ def _check_error_df(book: FieldBook, trait: str, kind: str) -> None:
             raise TrialInputError(
                 f"no entry has more than one plot with data for trait '{trait}', so there is "
                 "nothing to estimate the plot-to-plot error from",
+                file=book.source, column=trait,
+            )
+        return
+    if kind == "alpha":
+        cells = book.plots.loc[present, ["block", "incomplete_block"]]
+        blocks = len(cells.drop_duplicates())
+        # Intra-block error degrees of freedom: plots - entries - incomplete blocks + 1, the
+        # blocks absorbing the replicates (Patterson & Williams 1976, Biometrika 63:83-92).
+        if present.sum() - entries - blocks + 1 <= 0:
+            raise TrialInputError(
+                f"trait '{trait}' has too few plots with data to estimate the error in an alpha "
+                f"design ({present.sum()} plots, {entries} entries, {blocks} incomplete blocks)",
                 file=book.source, column=trait,
             )
         return

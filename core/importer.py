@@ -86,7 +86,8 @@ def _plots_frame(book: FieldBook) -> pd.DataFrame:
     return pd.DataFrame({
         "plot": plots["plot"].astype(str).to_numpy(),
         "block": [None if pd.isna(b) else str(b) for b in plots["block"]],
-        "incomplete_block": [None] * len(plots),
+        "incomplete_block": ([None if pd.isna(b) else str(b) for b in plots["incomplete_block"]]
+                             if "incomplete_block" in plots else [None] * len(plots)),
         "row": plots["row"].to_numpy(dtype=object),
         "column": plots["column"].to_numpy(dtype=object),
         "entry": plots["entry"].astype(str).to_numpy(),

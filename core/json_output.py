@@ -4,6 +4,11 @@ The layout is described in the README ("JSON output"). Fields are only ever adde
 version; a change to an existing field's meaning raises the version. Non-finite numbers (a test that
 could not be computed) are written as ``null``.
 
+A trial's trait also carries, for the REML-based analyses (design ``"alpha"``, a field-trend
+adjustment, random entries), ``variance_components``, ``efficiency_vs_rcbd``, ``heritability``,
+``spatial_options`` and ``field_trend`` (one record per plot with a value); they are empty lists
+or null for the plain RCBD and CRD analyses.
+
 ``"kind"`` tells a single trial (``"trial"``) from a series over environments (``"series"``). A
 series document has the same top-level keys, plus ``"sources"`` (each file and its checksum) and
 ``"environments"``; each trait adds the environment table, Bartlett's test, the combined ANOVA,
@@ -61,6 +66,13 @@ def trait_to_dict(result: TraitResult) -> dict:
             "tests": [asdict(t) for t in result.diagnostics.tests],
         },
         "warnings": list(result.warnings),
+        "spatial": result.spatial,
+        "entries_random": result.entries_random,
+        "variance_components": [asdict(v) for v in result.variance_components],
+        "efficiency_vs_rcbd": result.efficiency_vs_rcbd,
+        "heritability": result.heritability,
+        "spatial_options": [asdict(o) for o in result.spatial_options],
+        "field_trend": [asdict(p) for p in result.field_trend],
     })
 
 
@@ -78,6 +90,8 @@ def analysis_to_dict(analysis: TrialAnalysis) -> dict:
         "alpha": s.alpha,
         "checks": list(s.checks),
         "check_direction": s.check_direction,
+        "spatial": s.spatial,
+        "entries_random": s.entries_random,
         "traits": [trait_to_dict(t) for t in analysis.traits],
         "warnings": list(analysis.warnings),
         "notes": list(analysis.notes),

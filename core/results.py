@@ -17,13 +17,21 @@ def _frame(rows, cls) -> pd.DataFrame:
     return pd.DataFrame([asdict(r) for r in rows], columns=columns)
 
 
+#: The designs a single trial can be analysed as (see ``AnalysisSettings.design``).
+DESIGNS = ("rcbd", "crd", "alpha")
+#: The field-trend adjustments (see ``AnalysisSettings.spatial``).
+SPATIAL_METHODS = ("none", "rowcol", "papadakis")
+
+
 @dataclass(frozen=True, slots=True, kw_only=True)
 class AnalysisSettings:
     """Everything that decides how a trial is analysed.
 
     Attributes
     ----------
-    design : "rcbd" (randomized complete blocks) or "crd" (completely randomized).
+    design : "rcbd" (randomized complete blocks), "crd" (completely randomized) or "alpha"
+        (incomplete blocks within replicates, as in an alpha lattice: replicates fixed, incomplete
+        blocks random).
     method : mean-separation method: "lsd", "bonferroni", "sidak", "holm", "bh", "tukey", "scheffe",
         "snk", "duncan" or "dunnett".
     alpha : significance level of the method (family-wise for the adjusted methods, false discovery
@@ -33,6 +41,12 @@ class AnalysisSettings:
         check?) or "below" (is it lower?); one-sided only applies to ``dunnett``.
     traits : traits to analyse, in order; empty means all numeric traits.
     lower_is_better : traits for which the lowest mean ranks first and gets the letter "a".
+    spatial : field-trend adjustment of the entry means: "none", "rowcol" (field rows and columns
+        as random effects) or "papadakis" (the neighbour covariate of Papadakis 1937). Either
+        needs the field row and column of every plot; both are then compared with the plain
+        analysis.
+    entries_random : take the entries as random and rank them by their BLUPs (preliminary trials):
+        no mean separation is made, and the heritability of the BLUPs is reported.
     """
 
     design: str = "rcbd"
@@ -42,6 +56,8 @@ class AnalysisSettings:
     check_direction: str = "both"
     traits: tuple[str, ...] = ()
     lower_is_better: tuple[str, ...] = ()
+    spatial: str = "none"
+    entries_random: bool = False
 
     def to_dict(self) -> dict:
         """Plain data, as saved in a trial file and printed in reports."""
@@ -165,6 +181,51 @@ class Diagnostics:
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
+class VarianceEstimate:
+    """One REML variance component of a trait's model.
+
+    ``component`` is "incomplete block", "field row", "field column", "entry" (entries random) or
+    "residual" (the plot error; the residual mean square when the model has no random term).
+    """
+
+    component: str
+    variance: float
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class SpatialOption:
+    """A field-trend adjustment beside the plain analysis of the same design.
+
+    ``method`` is "none" (the plain analysis), "rowcol" or "papadakis"; ``residual_variance`` the
+    plot error variance of that model; ``percent_of_plain`` 100 x that variance / the plain
+    analysis' one (below 100: the adjustment took field trend out of the error); ``chosen`` whether
+    the trait's entry means come from it.
+    """
+
+    method: str
+    residual_variance: float
+    percent_of_plain: float
+    chosen: bool
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class PlotTrend:
+    """One plot of the field map: its value, the fitted field trend and the residual.
+
+    ``trend`` is the field-trend part of the fitted value (row plus column effects, or the
+    neighbour covariate's adjustment), centred on zero; ``residual`` the value minus everything
+    fitted (entry, replicate, blocks and trend).
+    """
+
+    plot: str
+    row: int
+    column: int
+    value: float
+    trend: float
+    residual: float
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
 class TraitResult:
     """The analysis of one trait.
 
@@ -173,6 +234,17 @@ class TraitResult:
     average over entries and pairs; each entry's and pair's own SE is in ``entries`` and
     ``comparisons``. ``lsd`` = t(1 - alpha/2, df) x ``sed``, the unadjusted least significant
     difference.
+
+    For the mixed models (design "alpha", a field-trend adjustment, or random entries) the means
+    are REML-based (see :mod:`trialdesk.core.alpha_lattice`); ``residual_ms``, ``residual_df`` and
+    ``anova`` are those of the same model with every term fixed (the intra-block analysis), whose
+    degrees of freedom the tests use; ``variance_components`` holds the REML variances;
+    ``efficiency_vs_rcbd`` is 100 x the average SED^2 of the complete-block analysis of the same
+    data over that of this analysis (common practice; None for the plain RCBD and CRD analyses and
+    for random entries); ``heritability`` the generalized heritability of the BLUPs (random
+    entries only). With a field-trend adjustment, ``spatial_options`` compares it with the plain
+    analysis and ``field_trend`` maps each plot. ``diagnostics`` always check the least-squares fit
+    with fixed blocks (for an alpha design, the incomplete blocks).
     """
 
     trait: str
@@ -196,6 +268,13 @@ class TraitResult:
     family: FamilyError
     diagnostics: Diagnostics
     warnings: tuple[str, ...]
+    spatial: str = "none"
+    entries_random: bool = False
+    variance_components: tuple[VarianceEstimate, ...] = ()
+    efficiency_vs_rcbd: float | None = None
+    heritability: float | None = None
+    spatial_options: tuple[SpatialOption, ...] = ()
+    field_trend: tuple[PlotTrend, ...] = ()
 
     @property
     def entry_p(self) -> float | None:
@@ -213,6 +292,10 @@ class TraitResult:
     def comparisons_frame(self) -> pd.DataFrame:
         """All comparisons of the method, one row per pair."""
         return _frame(self.comparisons, Comparison)
+
+    def field_trend_frame(self) -> pd.DataFrame:
+        """The field map: one row per plot with a value (empty without a field-trend adjustment)."""
+        return _frame(self.field_trend, PlotTrend)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -10,7 +10,10 @@ from trialdesk.core.cautions import CAUTIONS
 from trialdesk.core.results import TraitResult, TrialAnalysis
 from trialdesk.core.separation import METHOD_NAMES
 
-DESIGN_NAMES = {"rcbd": "randomized complete blocks", "crd": "completely randomized"}
+DESIGN_NAMES = {"rcbd": "randomized complete blocks", "crd": "completely randomized",
+                "alpha": "incomplete blocks within replicates (alpha design)"}
+SPATIAL_NAMES = {"none": "none", "rowcol": "field rows and columns as random effects",
+                 "papadakis": "neighbour covariate along the field row (Papadakis 1937)"}
 WIDTH = 96
 
 
@@ -30,18 +33,24 @@ def _p(value: float | None) -> str:
 
 
 def _anova_lines(result: TraitResult) -> list[str]:
-    lines = [f"  {'Source':<10}{'df':>5}{'SS':>14}{'MS':>14}{'F':>9}{'p':>10}"]
+    width = max(10, *(len(row.source) + 1 for row in result.anova))
+    lines = [f"  {'Source':<{width}}{'df':>5}{'SS':>14}{'MS':>14}{'F':>9}{'p':>10}"]
     for row in result.anova:
         lines.append(
-            f"  {row.source:<10}{row.df:>5}{row.ss:>14.4f}{_num(row.ms, 4):>14}"
+            f"  {row.source:<{width}}{row.df:>5}{row.ss:>14.4f}{_num(row.ms, 4):>14}"
             f"{_num(row.f, 2):>9}{_p(row.p):>10}"
         )
     return lines
 
 
+def _random_entries(result: TraitResult) -> bool:
+    """Whether the entries were random; a series' result (sharing these helpers) never has them."""
+    return getattr(result, "entries_random", False)
+
+
 def _entry_lines(result: TraitResult, has_checks: bool) -> list[str]:
     d = result.decimals + 1
-    letters = result.method != "dunnett"
+    letters = result.method != "dunnett" and not _random_entries(result)
     header = f"  {'Rank':>4}  {'Entry':<14}{'Mean':>10}{'SE':>8}{'n':>3}"
     header += "  Letters " if letters else ""
     header += f"  {'% check':>7}  vs checks" if has_checks else ""
@@ -74,6 +83,9 @@ def _level(value: float) -> str:
 
 def family_sentence(result: TraitResult) -> str:
     """The multiple-comparison arithmetic in one plain sentence."""
+    if _random_entries(result):
+        return ("Entries were taken as random: the means are BLUPs, for ranking; no pair of "
+                "entries was tested.")
     f = result.family
     what = "comparisons with the checks" if result.method == "dunnett" else "pairs"
     level = (_level(f.per_comparison_min) if f.per_comparison_min == f.per_comparison_max
@@ -85,15 +97,39 @@ def family_sentence(result: TraitResult) -> str:
             f"{METHOD_NAMES[result.method]} tests each at a level of {level}.")
 
 
+def _mixed_model_lines(result: TraitResult) -> list[str]:
+    """Variance components, efficiency, heritability and the field-trend comparison."""
+    lines: list[str] = []
+    if result.variance_components:
+        parts = ", ".join(f"{v.component} {v.variance:.4g}" for v in result.variance_components)
+        lines += _wrap(f"Variance components (REML): {parts}.")
+    if result.efficiency_vs_rcbd is not None:
+        lines += _wrap(f"Efficiency relative to the complete-block analysis: "
+                       f"{result.efficiency_vs_rcbd:.1f}% (ratio of the average squared SEDs, "
+                       f"common practice).")
+    if result.heritability is not None:
+        lines += _wrap(f"Heritability of the BLUPs: {result.heritability:.3f} (Cullis, Smith & "
+                       f"Coombes 2006).")
+    if result.spatial_options:
+        plain, *adjusted = result.spatial_options
+        parts = [f"{SPATIAL_NAMES[o.method]} {o.residual_variance:.4g} ({o.percent_of_plain:.1f}% "
+                 f"of it{', used for the means' if o.chosen else ''})" for o in adjusted]
+        lines += _wrap(f"Field trend: residual variance {plain.residual_variance:.4g} without "
+                       f"adjustment; " + "; ".join(parts) + ".")
+    return lines
+
+
 def trait_text(result: TraitResult, has_checks: bool) -> str:
     """The block of one trait."""
     d = result.decimals + 1
     direction = "higher is better" if result.higher_is_better else "lower is better"
+    lsd = "" if result.entries_random else f", LSD({result.alpha:g}) {result.lsd:.{d}f}"
     lines = [
         f"== {result.trait} ({direction}) ==",
         f"  Plots {result.n_plots}, missing {result.n_missing}.  Grand mean "
         f"{result.grand_mean:.{d}f}, CV {result.cv_percent:.1f}%, SEm {result.sem:.{d}f}, "
-        f"SED {result.sed:.{d}f}, LSD({result.alpha:g}) {result.lsd:.{d}f}",
+        f"SED {result.sed:.{d}f}{lsd}",
+        *_mixed_model_lines(result),
         "",
         *_anova_lines(result),
         "",
@@ -101,7 +137,7 @@ def trait_text(result: TraitResult, has_checks: bool) -> str:
         "",
         *_wrap(family_sentence(result)),
     ]
-    if result.method != "dunnett":
+    if result.method != "dunnett" and not result.entries_random:
         lines.append("  Entries sharing a letter were not declared different by the method.")
     for test in result.diagnostics.tests:
         stat = "" if test.p is None else f" (p = {_p(test.p)})"
@@ -124,6 +160,10 @@ def analysis_text(analysis: TrialAnalysis) -> str:
         f"Method: {METHOD_NAMES[s.method]}, alpha {s.alpha:g}"
         + (f", check comparisons {s.check_direction}" if s.method == "dunnett" else ""),
     ]
+    if s.spatial != "none":
+        head.append(f"Field trend: {SPATIAL_NAMES[s.spatial]}")
+    if s.entries_random:
+        head.append("Entries: random (means are BLUPs, for ranking)")
     for note in analysis.notes:
         head += _wrap(f"Note: {note}", indent="")
     for warning in analysis.warnings:

@@ -116,13 +116,17 @@ def fieldbook_from_trial(trial: TrialFile) -> FieldBook:
         "column": pd.array(plots["column"], dtype="Int64"),
         "source_row": pd.array([pd.NA] * len(plots), dtype="Int64"),
     })
+    roles = {"entry": "entry", "block": "block", "plot": "plot", "row": "row", "column": "column"}
+    if plots["incomplete_block"].notna().any():  # an alpha design's blocks within replicates
+        frame["incomplete_block"] = [None if pd.isna(b) else str(b)
+                                     for b in plots["incomplete_block"]]
+        roles["incomplete_block"] = "incomplete_block"
     values = values.reset_index(drop=True).astype(float)
     return FieldBook(
         plots=frame,
         values=values,
         traits=tuple(values.columns),
-        roles={"entry": "entry", "block": "block", "plot": "plot", "row": "row",
-               "column": "column"},
+        roles=roles,
         source=str(trial.path),
         sha256=data_checksum(frame, values),
         sheet=None,

@@ -624,7 +624,7 @@ def check_plots(plots: pd.DataFrame, values: pd.DataFrame, traits: pd.DataFrame,
         One row per trait with limits: column ``name``, and optionally ``low``, ``high`` and
         ``kind`` (see :func:`check_value`); None or NaN for no limit. A trait of ``values`` not
         listed here is checked without limits.
-    design : {"rcbd", "crd"}
+    design : {"rcbd", "crd", "alpha"}
         In an RCBD an entry may have only one plot per block.
 
     Returns
@@ -654,7 +654,9 @@ different entries; correct them if they are one entry
     warning 2 -0.5 is outside the range set for trait 'yield' (0 to 12); check it against the \
 field book
     """
-    kind = design_kind(design)
+    # An alpha design's replicates are complete blocks: its plots are checked as an RCBD's.
+    alpha = isinstance(design, str) and design.strip().casefold() == "alpha"
+    kind = "rcbd" if alpha else design_kind(design)
     labels = _plot_labels(plots, blocked=kind == "rcbd")
     rows = _source_rows(plots)
     found = _missing_labels(labels, rows)

@@ -23,6 +23,7 @@ from PySide6.QtCore import (
     Signal,
 )
 from PySide6.QtWidgets import (
+    QCheckBox,
     QComboBox,
     QDoubleSpinBox,
     QFormLayout,
@@ -48,7 +49,12 @@ from trialdesk.desktop.session import TrialSession
 
 AnyIndex = QModelIndex | QPersistentModelIndex
 
-DESIGNS = {"rcbd": "Randomized complete blocks (RCBD)", "crd": "Completely randomized (CRD)"}
+DESIGNS = {"rcbd": "Randomized complete blocks (RCBD)", "crd": "Completely randomized (CRD)",
+           "alpha": "Alpha lattice (incomplete blocks in each replicate)"}
+#: Field-trend adjustments, as the set-up words them.
+TRENDS = {"none": "None: blocks only",
+          "rowcol": "Field rows and columns (random effects)",
+          "papadakis": "Neighbouring plots (Papadakis covariate)"}
 DIRECTIONS = {"both": "Both ways: above or below the checks",
               "above": "One way: is the entry above the checks?",
               "below": "One way: is the entry below the checks?"}
@@ -237,6 +243,13 @@ class AnalysisSetup(QWidget):
         self.direction_note = QLabel("Only Dunnett's comparisons with the checks can be "
                                      "one-sided.")
         self.direction_note.setWordWrap(True)
+        self.trend_box = QComboBox()
+        for key, text in TRENDS.items():
+            self.trend_box.addItem(text, key)
+        self.trend_box.setToolTip("Adjust the entry means for field trend, using each plot's row "
+                                  "and column; the results compare it with the plain analysis")
+        self.random_box = QCheckBox("Rank entries as random effects (BLUPs, for early "
+                                    "generations; no mean separation)")
 
         form = QFormLayout()
         form.addRow("Design:", self.design_box)
@@ -245,6 +258,8 @@ class AnalysisSetup(QWidget):
         form.addRow("Alpha:", alpha_row)
         form.addRow("Check comparisons:", self.direction_box)
         form.addRow("", self.direction_note)
+        form.addRow("Field trend:", self.trend_box)
+        form.addRow("", self.random_box)
         choices = QGroupBox("How to analyse")
         choices.setLayout(form)
 
@@ -303,6 +318,8 @@ class AnalysisSetup(QWidget):
         self.method_box.currentIndexChanged.connect(self._changed)
         self.alpha_box.valueChanged.connect(self._changed)
         self.direction_box.currentIndexChanged.connect(self._changed)
+        self.trend_box.currentIndexChanged.connect(self._changed)
+        self.random_box.toggled.connect(self._changed)
         self.trait_model.changed.connect(self._changed)
         self.check_model.changed.connect(self._changed)
 
@@ -327,6 +344,8 @@ class AnalysisSetup(QWidget):
             check_direction=self.direction_box.currentData(),
             traits=() if traits == all_traits else tuple(traits),
             lower_is_better=lower,
+            spatial=self.trend_box.currentData(),
+            entries_random=self.random_box.isChecked(),
         )
 
     def _reload(self) -> None:
@@ -350,6 +369,8 @@ class AnalysisSetup(QWidget):
         self.method_box.setCurrentIndex(self.method_box.findData(settings.method))
         self.alpha_box.setValue(settings.alpha)
         self.direction_box.setCurrentIndex(self.direction_box.findData(settings.check_direction))
+        self.trend_box.setCurrentIndex(max(self.trend_box.findData(settings.spatial), 0))
+        self.random_box.setChecked(settings.entries_random)
         table = session.traits
         items = []
         for row in table.itertuples(index=False):

@@ -318,6 +318,7 @@ class FieldMapChart(ChartPanel):
         self.what = QComboBox()
         self.what.addItem("Plot values", "value")
         self.what.addItem("Residuals", "residual")
+        self.what.addItem("Fitted field trend", "trend")
         self.what.currentIndexChanged.connect(self._redraw)
         self.bar.insertWidget(1, self.what)
         self.colour_bar: pg.ColorBarItem | None = None
@@ -337,6 +338,10 @@ class FieldMapChart(ChartPanel):
         result, plots, checks, unit, decimals = self._shown
         known = plots.dropna(subset=["row", "column"])
         self.what.setEnabled(not known.empty)
+        has_trend = "trend" in known and bool(np.isfinite(known["trend"].to_numpy(float)).any())
+        self.what.model().item(self.what.findData("trend")).setEnabled(has_trend)
+        if self.what.currentData() == "trend" and not has_trend:
+            self.what.setCurrentIndex(self.what.findData("value"))  # redraws
         if known.empty:
             self._cells = {}
             self.clear("The field layout is not known: the plots have no row and column. "
@@ -356,13 +361,16 @@ class FieldMapChart(ChartPanel):
         image = pg.ImageItem(grid, axisOrder="row-major",
                              rect=QRectF(c0 - 0.5, r0 - 0.5, grid.shape[1], grid.shape[0]))
         finite = numbers[np.isfinite(numbers)]
-        if what == "residual":
+        if what in ("residual", "trend"):
             top = float(np.abs(finite).max()) if finite.size else 1.0
             levels = (-top, top)
             colours = pg.ColorMap([0.0, 0.5, 1.0], [BELOW, PAPER, ABOVE])
             words = (f"Residuals of {result.trait} by field position: green plots came out "
                      "above what their entry and block predict, red ones below; patches of one "
-                     "colour point to field trends the blocks missed.")
+                     "colour point to field trends the blocks missed." if what == "residual"
+                     else f"The field trend fitted for {result.trait}: green parts of the field "
+                     "grew more than the average plot, red ones less; the entry means are "
+                     "adjusted for it.")
         else:
             levels = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
             # From a light tint of the accent (not white, which marks a missing plot).
@@ -385,7 +393,8 @@ class FieldMapChart(ChartPanel):
                 frame = QGraphicsRectItem(c - 0.46, r - 0.46, 0.92, 0.92)
                 frame.setPen(pg.mkPen(CHECK_PEN, width=2))
                 self.plot.addItem(frame)
-        self._colour_bar(image, colours, levels, unit if what == "value" else "residual")
+        label = {"value": unit, "residual": "residual", "trend": "field trend"}[what]
+        self._colour_bar(image, colours, levels, label)
         bottom, left = self.plot.getAxis("bottom"), self.plot.getAxis("left")
         bottom.setTicks([[(c, str(c)) for c in range(c0, cols.max() + 1)], []])
         left.setTicks([[(r, str(r)) for r in range(r0, rows.max() + 1)], []])

@@ -52,7 +52,8 @@ __all__ = ["DIRECTIONS", "FactsPanel", "TraitTableModel", "read_number"]
 DIRECTIONS = ("higher is better", "lower is better")
 
 _TEXTS = (("name", "Trial name"), ("station", "Station"), ("season", "Season"))
-_DESIGNS = {"rcbd": "Randomized complete blocks (RCBD)", "crd": "Completely randomized (CRD)"}
+_DESIGNS = {"rcbd": "Randomized complete blocks (RCBD)", "crd": "Completely randomized (CRD)",
+            "alpha": "Alpha lattice (incomplete blocks)"}
 _DATES = (("sowing_date", "Sowing date"), ("harvest_date", "Harvest date"))
 # (fact, label, unit, "positive" or "percent", tooltip)
 _NUMBERS = (

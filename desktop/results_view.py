@@ -8,6 +8,7 @@ are out of date and the tables turn grey until the analysis is run again.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, fields
 from typing import Any
@@ -275,6 +276,13 @@ def _fit_columns(view: QTableView, rows_shown: bool = False) -> None:
         view.setFixedHeight(height + 2)
 
 
+def with_trend(plots: pd.DataFrame, result: TraitResult) -> pd.DataFrame:
+    """The residual table with the fitted field trend of a field-trend adjustment (``trend``,
+    NaN where the analysis fitted none) for the field map."""
+    trend = {t.plot: t.trend for t in result.field_trend}
+    return plots.assign(trend=[trend.get(str(p), np.nan) for p in plots["plot"]])
+
+
 class ResultsView(QWidget):
     """The results of the session's last analysis.
 
@@ -457,8 +465,8 @@ class ResultsView(QWidget):
 
     def _residual_table(self, result: TraitResult) -> pd.DataFrame:
         if result.trait not in self._residuals:
-            self._residuals[result.trait] = residual_table(self._book, result.trait,
-                                                           result.design)
+            self._residuals[result.trait] = with_trend(
+                residual_table(self._book, result.trait, result.design), result)
         return self._residuals[result.trait]
 
     # --- showing ------------------------------------------------------------------------------
@@ -508,14 +516,26 @@ class ResultsView(QWidget):
         direction = "higher is better" if result.higher_is_better else "lower is better"
         missing = f", {result.n_missing} missing" if result.n_missing else ""
         unit_text = f" {unit}" if unit else ""
+        lsd = (f"LSD({result.alpha:g}) {result.lsd:.{d}f}" if math.isfinite(result.lsd)
+               else "entries ranked as random (BLUPs), no LSD")
+        extra = ""
+        if result.efficiency_vs_rcbd is not None:
+            extra += (f" &nbsp;·&nbsp; efficiency vs complete blocks "
+                      f"{result.efficiency_vs_rcbd:.0f}%")
+        if result.heritability is not None:
+            extra += f" &nbsp;·&nbsp; heritability {result.heritability:.2f}"
+        chosen = [o for o in result.spatial_options if o.chosen and o.method != "none"]
+        if chosen:
+            extra += (f" &nbsp;·&nbsp; field trend ({chosen[0].method}): error "
+                      f"{chosen[0].percent_of_plain:.0f}% of the plain analysis")
         self.headline.setText(
             f"<b>{result.trait}</b>{f' ({unit})' if unit else ''}, {direction}: "
             f"{result.n_plots} plots{missing}.&nbsp;&nbsp; Grand mean "
             f"<b>{result.grand_mean:.{d}f}</b>{unit_text} &nbsp;·&nbsp; CV "
             f"<b>{result.cv_percent:.1f}%</b> &nbsp;·&nbsp; SEm {result.sem:.{d}f} &nbsp;·&nbsp; "
-            f"SED {result.sed:.{d}f} &nbsp;·&nbsp; LSD({result.alpha:g}) {result.lsd:.{d}f} "
+            f"SED {result.sed:.{d}f} &nbsp;·&nbsp; {lsd} "
             f"&nbsp;·&nbsp; residual df {result.residual_df} &nbsp;·&nbsp; "
-            f"{METHOD_NAMES[result.method]}, alpha {result.alpha:g}")
+            f"{METHOD_NAMES[result.method]}, alpha {result.alpha:g}{extra}")
         self.family.setText(family_sentence(result))
 
     def _show_entries(self, result: TraitResult, decimals: int) -> None:
@@ -635,7 +655,7 @@ class ResultsView(QWidget):
                 cells.append((e.mean, f"{e.mean:.{d}f} {tag}".rstrip()))
             cells += [(result.grand_mean, f"{result.grand_mean:.{d}f}"),
                       (result.cv_percent, f"{result.cv_percent:.1f}"),
-                      (result.lsd, f"{result.lsd:.{d}f}")]
+                      (result.lsd, f"{result.lsd:.{d}f}" if math.isfinite(result.lsd) else "")]
             key = f"trait:{result.trait}"
             table[key] = [value for value, _ in cells]
             table[f"{key}:text"] = [text for _, text in cells]
@@ -684,8 +704,9 @@ class ResultsView(QWidget):
             if self.current_trait() == trait:
                 self._show_charts(result, plots)
 
-        self.background.submit("residuals", lambda: residual_table(book, trait, result.design),
-                               arrived)
+        self.background.submit(
+            "residuals",
+            lambda: with_trend(residual_table(book, trait, result.design), result), arrived)
 
     def _chart_list(self) -> list[ChartPanel]:
         return [self.means_chart, self.residual_chart, self.quantile_chart, self.field_chart]
