@@ -29,7 +29,6 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -38,7 +37,6 @@ from PySide6.QtCore import QPointF, QRectF, Qt
 from PySide6.QtGui import (
     QPagedPaintDevice,
     QPageLayout,
-    QPageSize,
     QPainter,
     QPdfWriter,
     QPolygonF,
@@ -46,22 +44,20 @@ from PySide6.QtGui import (
 
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.layouts import Layout, LayoutPlot
-from trialdesk.core.version import VERSION
 from trialdesk.desktop.palette import ACCENT, CHECK_BG
 from trialdesk.desktop.report_pdf import (
     BLACK,
     CENTRE_FLAGS,
     FOOTER_MM,
-    PAPERS,
     RIGHT_FLAGS,
     TEXT_FLAGS,
-    _application,
     _faded,
     _Footer,
     _Header,
     _layouts,
     _RunningHead,
     _Style,
+    write_pages,
 )
 
 __all__ = ["render_layout", "write_layout_pdf"]
@@ -724,39 +720,9 @@ def write_layout_pdf(layout: Layout, path: str | os.PathLike[str], *, paper: str
         For an unknown paper size, or a path that cannot be written (no such folder, no
         permission, a folder of that name, a full disk); the message names the file.
     """
-    target = Path(path)
-    if paper not in PAPERS:
-        raise TrialInputError(f"the paper size must be {' or '.join(PAPERS)}, not '{paper}'",
-                              file=str(target))
-    if target.is_dir():
-        raise TrialInputError("this is a folder: give the name of the PDF file to write",
-                              file=str(target))
-    _application()
-    try:
-        handle, temp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part",
-                                        dir=target.parent)
-    except OSError as error:
-        raise TrialInputError(f"the field book cannot be written here "
-                              f"({error.strerror or error})", file=str(target)) from None
-    os.close(handle)
-    try:
-        writer = QPdfWriter(temp)
-        try:
-            writer.setPageSize(QPageSize(PAPERS[paper]))
-            writer.setTitle(f"{_heading(layout, dict(facts or {})).title}: field book")
-            writer.setCreator(f"Trialdesk {VERSION}")
-            render_layout(layout, writer, facts=facts, traits=traits)
-        except TrialInputError as error:
-            raise TrialInputError(error.message, file=str(target)) from None
-        finally:
-            del writer  # closes the file, also when drawing failed
-        with open(temp, "rb") as done:
-            os.fsync(done.fileno())
-        os.replace(temp, target)
-    except OSError as error:
-        raise TrialInputError(f"the field book could not be written ({error.strerror or error})",
-                              file=str(target)) from None
-    finally:
-        Path(temp).unlink(missing_ok=True)
-    return target
+    return write_pages(path, paper=paper,
+                       title=f"{_heading(layout, dict(facts or {})).title}: field book",
+                       draw=lambda writer: render_layout(layout, writer, facts=facts,
+                                                         traits=traits),
+                       what="field book")
 

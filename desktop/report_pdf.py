@@ -1350,6 +1350,24 @@ def write_pdf(report: TrialReport, path: str | os.PathLike[str], *, paper: str =
         For an unknown paper size, or a path that cannot be written (no such folder, no
         permission, a folder of that name, a full disk); the message names the file.
     """
+    return write_pages(path, paper=paper, title=report.title,
+                       draw=lambda writer: render_report(report, writer))
+
+
+def write_pages(path: str | os.PathLike[str], *, paper: str, title: str,
+                draw: Callable[[QPdfWriter], object], what: str = "report") -> Path:
+    """Draw pages into a PDF file at ``path``, atomically: the one way Trialdesk writes a PDF.
+
+    ``draw(writer)`` paints on a QPdfWriter of the ``paper`` size ("A4" or "Letter") whose file
+    is a temporary one beside ``path``; it is moved into place only when complete, so a crash
+    never leaves half a PDF nor spoils a good file already there. ``what`` names the document
+    in messages ("report", "field book"). Works with no display.
+
+    Raises
+    ------
+    TrialInputError
+        For an unknown paper size, or a path that cannot be written; the message names the file.
+    """
     target = Path(path)
     if paper not in PAPERS:
         raise TrialInputError(f"the paper size must be {' or '.join(PAPERS)}, not '{paper}'",
@@ -1362,16 +1380,16 @@ def write_pdf(report: TrialReport, path: str | os.PathLike[str], *, paper: str =
         handle, temp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part",
                                         dir=target.parent)
     except OSError as error:
-        raise TrialInputError(f"the report cannot be written here ({error.strerror or error})",
+        raise TrialInputError(f"the {what} cannot be written here ({error.strerror or error})",
                               file=str(target)) from None
     os.close(handle)
     try:
         writer = QPdfWriter(temp)
         try:
             writer.setPageSize(QPageSize(PAPERS[paper]))
-            writer.setTitle(report.title)
+            writer.setTitle(title)
             writer.setCreator(f"Trialdesk {VERSION}")
-            render_report(report, writer)
+            draw(writer)
         except TrialInputError as error:
             raise TrialInputError(error.message, file=str(target)) from None
         finally:
@@ -1380,7 +1398,7 @@ def write_pdf(report: TrialReport, path: str | os.PathLike[str], *, paper: str =
             os.fsync(done.fileno())
         os.replace(temp, target)
     except OSError as error:
-        raise TrialInputError(f"the report could not be written ({error.strerror or error})",
+        raise TrialInputError(f"the {what} could not be written ({error.strerror or error})",
                               file=str(target)) from None
     finally:
         Path(temp).unlink(missing_ok=True)

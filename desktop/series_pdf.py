@@ -33,7 +33,6 @@ from __future__ import annotations
 import itertools
 import math
 import os
-import tempfile
 from bisect import bisect_right
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -41,7 +40,7 @@ from itertools import accumulate
 from pathlib import Path
 
 from PySide6.QtCore import QMarginsF, QPointF, QRectF, Qt
-from PySide6.QtGui import QPagedPaintDevice, QPageLayout, QPageSize, QPainter, QPdfWriter
+from PySide6.QtGui import QPagedPaintDevice, QPageLayout, QPainter
 
 from trialdesk.core.errors import TrialInputError
 from trialdesk.core.series_report import (
@@ -52,7 +51,6 @@ from trialdesk.core.series_report import (
     entry_test_text,
 )
 from trialdesk.core.series_results import EntryTest, SeriesAnalysis
-from trialdesk.core.version import VERSION
 from trialdesk.desktop.palette import (
     ABOVE,
     ABOVE_MARK,
@@ -70,9 +68,7 @@ from trialdesk.desktop.report_pdf import (
     FOOTER_MM,
     GAP_MM,
     MARGIN_MM,
-    PAPERS,
     RIGHT_FLAGS,
-    _application,
     _faded,
     _fixed,
     _Footer,
@@ -81,6 +77,7 @@ from trialdesk.desktop.report_pdf import (
     _RunningHead,
     _Style,
     _ticks,
+    write_pages,
 )
 
 __all__ = ["render_series_report", "write_series_pdf"]
@@ -959,38 +956,5 @@ def write_series_pdf(report_or_analysis: SeriesReport | SeriesAnalysis,
     """
     report = (report_or_analysis if isinstance(report_or_analysis, SeriesReport)
               else build_series_report(report_or_analysis))
-    target = Path(path)
-    if paper not in PAPERS:
-        raise TrialInputError(f"the paper size must be {' or '.join(PAPERS)}, not '{paper}'",
-                              file=str(target))
-    if target.is_dir():
-        raise TrialInputError("this is a folder: give the name of the PDF file to write",
-                              file=str(target))
-    _application()
-    try:
-        handle, temp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part",
-                                        dir=target.parent)
-    except OSError as error:
-        raise TrialInputError(f"the report cannot be written here ({error.strerror or error})",
-                              file=str(target)) from None
-    os.close(handle)
-    try:
-        writer = QPdfWriter(temp)
-        try:
-            writer.setPageSize(QPageSize(PAPERS[paper]))
-            writer.setTitle(report.title)
-            writer.setCreator(f"Trialdesk {VERSION}")
-            render_series_report(report, writer)
-        except TrialInputError as error:
-            raise TrialInputError(error.message, file=str(target)) from None
-        finally:
-            del writer  # closes the file, also when drawing failed
-        with open(temp, "rb") as done:
-            os.fsync(done.fileno())
-        os.replace(temp, target)
-    except OSError as error:
-        raise TrialInputError(f"the report could not be written ({error.strerror or error})",
-                              file=str(target)) from None
-    finally:
-        Path(temp).unlink(missing_ok=True)
-    return target
+    return write_pages(path, paper=paper, title=report.title,
+                       draw=lambda writer: render_series_report(report, writer))
