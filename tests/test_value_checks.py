@@ -404,4 +404,7 @@ def test_check_plots_refuses_tables_that_do_not_fit(change, says: str) -> None:
 
 
 def test_check_plots_unknown_design() -> None:
-    assert "unknown design 'alpha'" in raised(check_plots, *small_trial(), design="alpha")
+    assert "unknown design 'latin'" in raised(check_plots, *small_trial(), design="latin")
+    # An alpha design's replicates are complete blocks: its plots are checked as an RCBD's.
+    assert check_plots(*small_trial(), design="alpha") == check_plots(*small_trial(),
+                                                                     design="rcbd")
