@@ -990,20 +990,27 @@ class _Notes:
                      s.wrap(s.note, self.footnotes[index], rect.width()))
 
     def cautions_height(self, width: float) -> float:
-        s = self.style
-        lines = s.wrap(s.note, self.cautions, width - 2 * self.pad)
-        return 2 * self.pad + s.line(s.note_bold) + len(lines) * s.line(s.note)
+        return cautions_height(self.style, self.cautions, self.pad, width)
 
     def draw_cautions(self, painter: QPainter, rect: QRectF) -> None:
-        s, pad = self.style, self.pad
-        painter.setPen(s.pen(ACCENT, 0.7))
-        painter.setBrush(Qt.BrushStyle.NoBrush)
-        painter.drawRect(rect)
-        inner = rect.width() - 2 * pad
-        y = s.draw_lines(painter, s.note_bold, rect.left() + pad, rect.top() + pad, inner,
-                         ["Cautions"])
-        s.draw_lines(painter, s.note, rect.left() + pad, y, inner,
-                     s.wrap(s.note, self.cautions, inner))
+        draw_cautions(painter, self.style, self.cautions, self.pad, rect)
+
+
+def cautions_height(s: _Style, text: str, pad: float, width: float) -> float:
+    """Height of the cautions box at ``width``: every printed report carries it."""
+    lines = s.wrap(s.note, text, width - 2 * pad)
+    return 2 * pad + s.line(s.note_bold) + len(lines) * s.line(s.note)
+
+
+def draw_cautions(painter: QPainter, s: _Style, text: str, pad: float, rect: QRectF) -> None:
+    """The cautions in a ruled box filling ``rect``."""
+    painter.setPen(s.pen(ACCENT, 0.7))
+    painter.setBrush(Qt.BrushStyle.NoBrush)
+    painter.drawRect(rect)
+    inner = rect.width() - 2 * pad
+    y = s.draw_lines(painter, s.note_bold, rect.left() + pad, rect.top() + pad, inner,
+                     ["Cautions"])
+    s.draw_lines(painter, s.note, rect.left() + pad, y, inner, s.wrap(s.note, text, inner))
 
 
 # --- laying the pages out ------------------------------------------------------------------------

@@ -77,6 +77,8 @@ from trialdesk.desktop.report_pdf import (
     _RunningHead,
     _Style,
     _ticks,
+    cautions_height,
+    draw_cautions,
     write_pages,
 )
 
@@ -658,20 +660,10 @@ class _Notes:
         return _Block(height, draw, gap)
 
     def cautions_height(self, width: float) -> float:
-        s = self.style
-        lines = s.wrap(s.note, self.cautions, width - 2 * self.pad)
-        return 2 * self.pad + s.line(s.note_bold) + len(lines) * s.line(s.note)
+        return cautions_height(self.style, self.cautions, self.pad, width)
 
     def draw_cautions(self, painter: QPainter, rect: QRectF) -> None:
-        s, pad = self.style, self.pad
-        painter.setPen(s.pen(ACCENT, 0.7))
-        painter.setBrush(Qt.BrushStyle.NoBrush)
-        painter.drawRect(rect)
-        inner = rect.width() - 2 * pad
-        y = s.draw_lines(painter, s.note_bold, rect.left() + pad, rect.top() + pad, inner,
-                         ["Cautions"])
-        s.draw_lines(painter, s.note, rect.left() + pad, y, inner,
-                     s.wrap(s.note, self.cautions, inner))
+        draw_cautions(painter, self.style, self.cautions, self.pad, rect)
 
 
 # --- laying the pages out ------------------------------------------------------------------------
