@@ -172,6 +172,43 @@ def _no_separation() -> Separation:
                                          per_comparison_min=float("nan"),
                                          per_comparison_max=float("nan")))
 
+def ranked_entries(entries: tuple[str, ...], means: np.ndarray, cov: np.ndarray,
+                   replication: np.ndarray, sep, checks: tuple[str, ...] | list[str],
+                   higher_is_better: bool) -> tuple[tuple[EntryMean, ...], float]:
+    """The entry rows of a result and the average SED, from means already in rank order.
+
+    ``sep`` is the outcome of :func:`trialdesk.core.separation.separate` on these means;
+    ``checks`` the trial's checks (those not among ``entries`` are ignored). Shared by the
+    single-trial and the series analysis, so both word their tables the same way.
+    """
+    letters = (grouping_letters(means, sep.different, higher_is_better=higher_is_better)
+               if sep.different is not None else [None] * len(entries))
+    checks = [c for c in checks if c in entries]
+    check_mean = float(np.mean([means[entries.index(c)] for c in checks])) if checks else None
+    vs = _vs_checks(sep, checks)
+    ranks = _ranks(means, higher_is_better)
+    se = np.sqrt(np.diag(cov))
+    rows = tuple(
+        EntryMean(
+            entry=e,
+            is_check=e in checks,
+            mean=float(means[i]),
+            se=float(se[i]),
+            n=int(replication[i]),
+            rank=int(ranks[i]),
+            letters=letters[i],
+            percent_of_check=None if not check_mean else float(100.0 * means[i] / check_mean),
+            above_checks=tuple(vs.get(e, ([], []))[0]),
+            below_checks=tuple(vs.get(e, ([], []))[1]),
+        )
+        for i, e in enumerate(entries)
+    )
+    var = np.diag(cov)
+    iu = np.triu_indices(len(entries), k=1)
+    sed = float(np.mean(np.sqrt(var[iu[0]] + var[iu[1]] - 2 * cov[iu])))
+    return rows, sed
+
+
 
 def analyze_trait(book: FieldBook, trait: str, settings: AnalysisSettings) -> TraitResult:
     """Analyse one trait of a field book."""
@@ -223,31 +260,8 @@ def analyze_trait(book: FieldBook, trait: str, settings: AnalysisSettings) -> Tr
         sep = separate(entries, means, cov, model.residual_df, method=settings.method,
                        alpha=settings.alpha, entry_p=entry_p, checks=settings.checks,
                        check_direction=settings.check_direction)
-    letters = (grouping_letters(means, sep.different, higher_is_better=higher_is_better)
-               if sep.different is not None else [None] * len(entries))
-    checks = [c for c in settings.checks if c in entries]
-    check_mean = float(np.mean([means[entries.index(c)] for c in checks])) if checks else None
-    vs = _vs_checks(sep, checks)
-    ranks = _ranks(means, higher_is_better)
-    entry_rows = tuple(
-        EntryMean(
-            entry=e,
-            is_check=e in checks,
-            mean=float(means[i]),
-            se=float(se[i]),
-            n=int(replication[i]),
-            rank=int(ranks[i]),
-            letters=letters[i],
-            percent_of_check=None if not check_mean else float(100.0 * means[i] / check_mean),
-            above_checks=tuple(vs.get(e, ([], []))[0]),
-            below_checks=tuple(vs.get(e, ([], []))[1]),
-        )
-        for i, e in enumerate(entries)
-    )
-
-    var = np.diag(cov)
-    iu = np.triu_indices(len(entries), k=1)
-    sed = float(np.mean(np.sqrt(var[iu[0]] + var[iu[1]] - 2 * cov[iu])))
+    entry_rows, sed = ranked_entries(entries, means, cov, replication, sep, settings.checks,
+                                     higher_is_better)
     grand_mean = float(np.nanmean(y))
     cv = (float(100.0 * np.sqrt(model.residual_ms) / grand_mean) if grand_mean
           else float("nan"))

@@ -39,14 +39,13 @@ from trialdesk.core.analysis import (
     HIGH_CV_PERCENT,
     AnalysisCancelled,
     _ranks,
-    _vs_checks,
     analyze_trait,
+    ranked_entries,
 )
 from trialdesk.core.decimals import recorded_decimals
 from trialdesk.core.errors import InputWarning, TrialInputError
 from trialdesk.core.fieldbook import FieldBook, check_design, read_fieldbook
-from trialdesk.core.letters import grouping_letters
-from trialdesk.core.results import AnalysisSettings, AnovaRow, AssumptionTest, EntryMean
+from trialdesk.core.results import AnalysisSettings, AnovaRow, AssumptionTest
 from trialdesk.core.separation import CHECK_DIRECTIONS, METHODS, separate
 from trialdesk.core.series_results import (
     CellMean,
@@ -903,30 +902,8 @@ def _separation(cells: _Cells, fit: _AdditiveFit, scale: float, df: int,
     sep = separate(entries, means, cov, df, method=settings.method, alpha=settings.alpha,
                    entry_p=1.0 if entry_p is None else entry_p, checks=checks,
                    check_direction=settings.check_direction)
-    letters = (grouping_letters(means, sep.different, higher_is_better=higher_is_better)
-               if sep.different is not None else [None] * len(entries))
-    check_mean = float(np.mean([means[entries.index(c)] for c in checks])) if checks else None
-    vs = _vs_checks(sep, checks)
-    ranks = _ranks(means, higher_is_better)
-    se = np.sqrt(np.diag(cov))
-    rows = tuple(
-        EntryMean(
-            entry=entry,
-            is_check=entry in checks,
-            mean=float(means[k]),
-            se=float(se[k]),
-            n=int(n_values[order[k]]),
-            rank=int(ranks[k]),
-            letters=letters[k],
-            percent_of_check=None if not check_mean else float(100.0 * means[k] / check_mean),
-            above_checks=tuple(vs.get(entry, ([], []))[0]),
-            below_checks=tuple(vs.get(entry, ([], []))[1]),
-        )
-        for k, entry in enumerate(entries)
-    )
-    var = np.diag(cov)
-    iu = np.triu_indices(len(entries), k=1)
-    sed = float(np.mean(np.sqrt(var[iu[0]] + var[iu[1]] - 2 * cov[iu])))
+    rows, sed = ranked_entries(entries, means, cov, n_values[order], sep, checks,
+                               higher_is_better)
     return rows, sep.comparisons, sep.family, sed
 
 
